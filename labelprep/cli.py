@@ -1,0 +1,380 @@
+"""The ``labelprep`` command line: each command parses, calls one library function, prints.
+
+Nothing heavy is imported at module level, so ``labelprep --help`` answers at once. Library errors
+(:class:`labelprep.errors.LabelprepError`) become one line on stderr and their exit code: 2 for bad
+usage or unreadable input, 1 for a failed ``--fail-on`` gate.
+"""
+
+from __future__ import annotations
+
+import functools
+from pathlib import Path
+
+import click
+
+from . import __version__, defaults
+from .errors import LabelprepError
+
+
+class _Failure(click.ClickException):
+    def __init__(self, message: str, exit_code: int):
+        super().__init__(message)
+        self.exit_code = exit_code
+
+
+class _Group(click.Group):
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except LabelprepError as exc:
+            raise _Failure(str(exc), exc.exit_code) from exc
+
+
+def _stack(*decorators):
+    """One decorator applying several click options, so prepare can reuse each stage's options."""
+    def apply(func):
+        for deco in reversed(decorators):
+            func = deco(func)
+        return func
+    return apply
+
+
+def _parse_ratios(ctx, param, value):
+    if value is None or isinstance(value, tuple):
+        return value
+    try:
+        return tuple(float(x) for x in value.split(","))
+    except ValueError:
+        raise click.BadParameter(f"expected numbers separated by commas such as 0.8,0.1,0.1; got {value!r}")
+
+
+_existing_dir = click.Path(exists=True, file_okay=False, dir_okay=True, path_type=Path)
+_existing_file = click.Path(exists=True, file_okay=True, dir_okay=False, path_type=Path)
+
+_quiet = click.option("--quiet", "-q", is_flag=True, help="No progress bar and no summary.")
+_force = click.option("--force", is_flag=True,
+                      help="Replace outputs that labelprep did not write (never touches sources).")
+_jobs = click.option("--jobs", "-j", type=click.IntRange(min=0), default=0, show_default=True,
+                     help="Worker processes for decoding; 0 = every core.")
+_max_pixels = click.option("--max-pixels", type=click.IntRange(min=1), default=defaults.MAX_PIXELS,
+                           show_default=True,
+                           help="Pixel budget per image; larger images are flagged and not decoded.")
+SCAN_OPTIONS = _stack(
+    click.option("--layout", type=click.Choice(["auto", "folders", "split-folders", "table"]),
+                 default="auto", show_default=True,
+                 help="Where labels come from: ROOT/<label>/..., ROOT/<train|val|test>/<label>/..., "
+                      "or a label table; auto detects."),
+    click.option("--labels", type=_existing_file, default=None,
+                 help="Label table CSV with columns path,label[,group] (paths relative to ROOT)."),
+    click.option("--group-pattern", metavar="REGEX", default=None,
+                 help="Regular expression; its first capture group in each path is the file's "
+                      "group (e.g. '([^/]+)_\\d+\\.jpg$' groups by name prefix)."),
+    click.option("--include-hidden", is_flag=True,
+                 help="Also index hidden names (starting with '.') and system files such as Thumbs.db."),
+    _jobs, _max_pixels,
+)
+CHECK_OPTIONS = _stack(
+    click.option("--min-side", type=click.IntRange(min=1), default=defaults.MIN_SIDE, show_default=True,
+                 help="Images whose shorter side is below this many pixels are flagged too-small."),
+)
+_max_distance = click.option(
+    "--max-distance", type=click.IntRange(0, 64), default=defaults.MAX_DISTANCE, show_default=True,
+    metavar="BITS", help="Hamming radius on the 64-bit perceptual hash for near-duplicates.")
+GROUP_OPTIONS = _stack(
+    _max_distance,
+    click.option("--keep-conflicts", is_flag=True,
+                 help="Keep clusters that span labels in the split (default: leave them out)."),
+)
+SPLIT_OPTIONS = _stack(
+    click.option("--ratios", callback=_parse_ratios, default=",".join(map(str, defaults.RATIOS)),
+                 show_default=True, help="train,val,test shares (two numbers: train,test)."),
+    click.option("--seed", type=int, default=defaults.SEED, show_default=True,
+                 help="Random seed; the same seed and files give the same split."),
+    click.option("--folds", type=click.IntRange(min=2), default=None,
+                 help="Also write a fold column with K cross-validation folds."),
+    click.option("--keep-from", type=_existing_file, default=None, metavar="OLD_MANIFEST",
+                 help="Keep every file already assigned in this manifest where it was; place only new files."),
+)
+_fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="never",
+                        show_default=True,
+                        help="Exit with status 1 when any file has an issue of this severity or worse.")
+
+
+def _progress(quiet: bool):
+    from .progress import terminal
+
+    return terminal(quiet=quiet)
+
+
+def _say(quiet: bool, text: str = "", **kwargs):
+    if not quiet:
+        click.echo(text, **kwargs)
+
+
+def _read(path):
+    from .manifest import read
+
+    return read(path)
+
+
+def _write_back(df, path, stage: str, options: dict):
+    from .manifest import write
+
+    write(df, path, meta={"stages": {stage: {"options": options}}}, force=True)
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="labelprep")
+def main():
+    """Turn folders of labeled images into a clean, leak-free, well-balanced training set.
+
+    A typical run is one command: `labelprep prepare ROOT --out DIR`. The stage commands
+    (scan, check, group, split, report) do the same steps one at a time on a manifest, a CSV
+    (or Parquet) table with one row per file. Source images are only ever read.
+    """
+
+
+@main.command()
+@click.argument("root", type=_existing_dir)
+@click.option("-o", "--output", "output", required=True, type=click.Path(path_type=Path),
+              metavar="MANIFEST", help="Manifest to write (.csv, or .parquet with pyarrow). "
+                                       "If it exists, unchanged files are not decoded again.")
+@SCAN_OPTIONS
+@_force
+@_quiet
+def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_pixels, force, quiet):
+    """Index every file under ROOT: label, size, format, digests and perceptual hash."""
+    from . import manifest
+    from .scanner import scan as run
+
+    manifest.guard_output(output, force=force)
+    previous = None
+    if output.is_file():
+        try:
+            previous = manifest.read(output)
+        except LabelprepError:
+            previous = None
+    m = run(root, layout=layout, labels=labels, group_pattern=group_pattern,
+            include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels, previous=previous,
+            progress=_progress(quiet))
+    facts = m.attrs.get("scan", {})
+    options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
+               "include_hidden": include_hidden, "max_pixels": max_pixels}
+    manifest.write(m, output, meta={"root": str(root.resolve()),
+                                    "stages": {"scan": {"options": options, "result": facts}}},
+                   force=True)
+    _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
+                f"{facts.get('reused', 0)} unchanged), layout {facts.get('layout')} -> {output}")
+    if facts.get("skipped_junk"):
+        click.echo(f"skipped {facts['skipped_junk']} hidden or system files "
+                   f"(e.g. {', '.join(facts['skipped_examples'][:3])}); --include-hidden indexes them",
+                   err=True)
+
+
+def _print_issues(m, quiet: bool, examples: int = 3):
+    from .checks import summary_lines
+
+    for line in summary_lines(m, examples=examples):
+        _say(quiet, line)
+
+
+def _gate(m, fail_on: str):
+    from .codes import gate
+    from .errors import GateFailed
+
+    failing = gate(m["issues"], fail_on)
+    if failing:
+        listed = ", ".join(f"{c} ({n})" for c, n in failing.items())
+        raise GateFailed(f"--fail-on {fail_on}: {listed}")
+
+
+@main.command()
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@CHECK_OPTIONS
+@_max_pixels
+@_fail_on
+@_quiet
+def check(manifest_path, min_side, max_pixels, fail_on, quiet):
+    """Flag corrupt, truncated, tiny, mislabelled-format and risky files in MANIFEST.
+
+    The codes are written back into the manifest's issues column; no row is removed.
+    """
+    from .checks import check as run
+
+    m = run(_read(manifest_path), min_side=min_side, max_pixels=max_pixels)
+    _write_back(m, manifest_path, "check", {"min_side": min_side, "max_pixels": max_pixels})
+    _print_issues(m, quiet)
+    _gate(m, fail_on)
+
+
+@main.command()
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@GROUP_OPTIONS
+@_quiet
+def group(manifest_path, max_distance, keep_conflicts, quiet):
+    """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""
+    from .clusters import group as run
+
+    m = run(_read(manifest_path), max_distance=max_distance, keep_conflicts=keep_conflicts,
+            progress=_progress(quiet))
+    _write_back(m, manifest_path, "group", {"max_distance": max_distance,
+                                            "keep_conflicts": keep_conflicts})
+    in_clusters = int(m["dup_group"].notna().sum())
+    _say(quiet, f"{m['dup_group'].nunique()} near-duplicate clusters holding {in_clusters} files")
+
+
+@main.command()
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@SPLIT_OPTIONS
+@_quiet
+def split(manifest_path, ratios, seed, folds, keep_from, quiet):
+    """Assign train/val/test so that no cluster or group spans two splits."""
+    from .splits import split as run
+
+    old = _read(keep_from) if keep_from is not None else None
+    m = run(_read(manifest_path), ratios=ratios, seed=seed, folds=folds, keep_from=old,
+            progress=_progress(quiet))
+    _write_back(m, manifest_path, "split", {"ratios": list(ratios), "seed": seed, "folds": folds,
+                                            "keep_from": keep_from})
+    counts = m["split"].replace("", "left out").value_counts()
+    _say(quiet, "  ".join(f"{name}: {counts.get(name, 0)}" for name in ("train", "val", "test", "left out")))
+
+
+@main.command()
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@click.option("--json", "json_path", type=click.Path(path_type=Path), help="Write the summary as JSON.")
+@click.option("--markdown", "md_path", type=click.Path(path_type=Path), help="Write a Markdown report.")
+@click.option("--html", "html_path", type=click.Path(path_type=Path),
+              help="Write a self-contained HTML report with thumbnails.")
+@click.option("--root", type=_existing_dir, default=None,
+              help="Folder the manifest's paths are relative to (default: from the manifest's sidecar).")
+@_quiet
+def report(manifest_path, json_path, md_path, html_path, root, quiet):
+    """Class balance per split, issues and duplicate clusters of MANIFEST."""
+    from .manifest import read_sidecar
+    from .reports import report as run, terminal_table
+
+    meta = read_sidecar(manifest_path)
+    root = root or _root_from(meta)
+    summary = run(_read(manifest_path), json=json_path, html=html_path, markdown=md_path,
+                  root=root, meta=meta)
+    _say(quiet, terminal_table(summary))
+
+
+def _root_from(meta: dict):
+    root = meta.get("root")
+    return Path(root) if root and Path(root).is_dir() else None
+
+
+@main.command()
+@click.argument("target", metavar="MANIFEST_OR_ROOT", type=click.Path(exists=True, path_type=Path))
+@click.option("--fail-on", type=click.Choice(["leaks", "never"]), default="never", show_default=True,
+              help="Exit with status 1 when any near-duplicate or group crosses splits.")
+@click.option("--json", "json_path", type=click.Path(path_type=Path), help="Write the audit as JSON.")
+@_max_distance
+@SCAN_OPTIONS
+@_quiet
+def audit(target, fail_on, json_path, max_distance, layout, labels, group_pattern,
+          include_hidden, jobs, max_pixels, quiet):
+    """Leaks and class balance of an existing split.
+
+    MANIFEST_OR_ROOT is a manifest with a split column, or a folder laid out as
+    ROOT/<train|val|test>/<label>/... (scanned first, in memory only).
+    """
+    from .audits import audit as run, render
+    from .errors import GateFailed
+
+    if target.is_dir():
+        from .scanner import scan as scan_run
+
+        m = scan_run(target, layout=layout, labels=labels, group_pattern=group_pattern,
+                     include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
+                     progress=_progress(quiet))
+    else:
+        m = _read(target)
+    result = run(m, max_distance=max_distance)
+    if json_path is not None:
+        import json
+
+        from .manifest import write_text
+
+        write_text(json_path, json.dumps(result, indent=2, sort_keys=True) + "\n")
+    _say(quiet, render(result))
+    if fail_on == "leaks" and (result["near_leaks"] or result["group_leaks"]):
+        raise GateFailed(f"{len(result['near_leaks'])} near-duplicate pairs and "
+                         f"{len(result['group_leaks'])} groups cross splits")
+
+
+@main.command()
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@click.argument("dest", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--mode", type=click.Choice(["hardlink", "symlink", "copy"]), default="hardlink",
+              show_default=True, help="How files are placed; hardlinks fall back to copies across filesystems.")
+@click.option("--strip-metadata", is_flag=True, help="On copies, remove EXIF location data.")
+@click.option("--root", type=_existing_dir, default=None,
+              help="Folder the manifest's paths are relative to (default: from the manifest's sidecar).")
+@_force
+@_quiet
+def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
+    """Lay out DEST/<split>/<label>/<file> and DEST/<split>.csv for any training framework."""
+    from .errors import InputError
+    from .exports import export as run
+    from .manifest import read_sidecar
+
+    root = root or _root_from(read_sidecar(manifest_path))
+    if root is None:
+        raise InputError(f"cannot tell which folder {manifest_path}'s paths are relative to; pass --root")
+    written = run(_read(manifest_path), dest, root=root, mode=mode, force=force,
+                  strip_metadata=strip_metadata, progress=_progress(quiet))
+    _say(quiet, f"{len(written)} files placed under {dest} ({mode})")
+
+
+@main.command()
+@click.argument("root", type=_existing_dir)
+@click.option("--out", "out", required=True, type=click.Path(file_okay=False, path_type=Path),
+              metavar="DIR", help="Folder for manifest.csv, report.json and report.html.")
+@SCAN_OPTIONS
+@CHECK_OPTIONS
+@GROUP_OPTIONS
+@SPLIT_OPTIONS
+@_fail_on
+@_force
+@_quiet
+def prepare(root, out, fail_on, quiet, **options):
+    """Scan, check, group, split and report ROOT in one go, into DIR."""
+    from .pipeline import prepare as run
+
+    m, summary = run(root, out, progress=_progress(quiet), **options)
+    _print_outcome(m, summary, out, quiet)
+    _gate(m, fail_on)
+
+
+def _print_outcome(m, summary, out: Path, quiet: bool):
+    from .reports import terminal_table
+
+    _say(quiet, terminal_table(summary))
+    _print_issues(m, quiet)
+    _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
+
+
+@main.command()
+@click.argument("folder", required=False, type=click.Path(file_okay=False, path_type=Path),
+                default=Path("labelprep-demo"))
+@click.option("--seed", type=int, default=defaults.SEED, show_default=True,
+              help="Seed for both the generated images and the split.")
+@_jobs
+@_force
+@_quiet
+def demo(folder, seed, jobs, force, quiet):
+    """Generate the tide-pool survey demo in FOLDER and run prepare on it.
+
+    FOLDER/photos holds the generated images (with planted problems), FOLDER/out the results.
+    """
+    from .demo import make_demo, planted_summary
+    from .pipeline import prepare as run
+
+    photos = make_demo(folder / "photos", seed=seed, force=force)
+    _say(quiet, f"generated {photos}: {planted_summary(photos)}")
+    m, summary = run(photos, folder / "out", group_pattern=r"^[^/]+/(pool-\d+)-", seed=seed,
+                     jobs=jobs, force=force, progress=_progress(quiet))
+    _print_outcome(m, summary, folder / "out", quiet)

@@ -1,0 +1,117 @@
+"""Issue codes: the registry behind the manifest's ``issues`` column, and helpers to edit it.
+
+Each code has exactly one severity. An *error* keeps the row out of the split; a *warning* is
+reported and the row is still used. A stage owns its codes: re-running it first removes the codes
+it owns and then adds what it finds, so stages can be run again in any order.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+ERROR = "error"
+WARNING = "warning"
+
+
+@dataclass(frozen=True)
+class IssueCode:
+    code: str
+    severity: str
+    stage: str
+    meaning: str
+
+
+_CODE_LIST = [
+    IssueCode("empty-file", ERROR, "check", "the file has zero bytes"),
+    IssueCode("not-image", ERROR, "check", "the first bytes match no image format labelprep reads"),
+    IssueCode("unreadable", ERROR, "check", "the file is an image format but cannot be opened or decoded"),
+    IssueCode("truncated", ERROR, "check", "the image data stops before its end (cut-off download or copy)"),
+    IssueCode("pixel-limit", ERROR, "check", "width x height is over the pixel budget (decompression-bomb guard); not decoded"),
+    IssueCode("too-small", ERROR, "check", "the shorter side is below the minimum side length"),
+    IssueCode("no-label", ERROR, "check", "the file has no class label"),
+    IssueCode("link-skipped", ERROR, "check", "a symbolic link; links are not followed, so it is not indexed"),
+    IssueCode("wrong-extension", WARNING, "check", "the file name's extension names another format than its content"),
+    IssueCode("exact-copy", WARNING, "group", "byte-identical to another file"),
+    IssueCode("near-copy", WARNING, "group", "a near-duplicate of another file (perceptual hash within the radius)"),
+    IssueCode("label-conflict", ERROR, "group", "its near-duplicate cluster holds more than one label"),
+    IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
+]
+
+CODES: dict[str, IssueCode] = {c.code: c for c in _CODE_LIST}
+
+
+def codes_of(stage: str) -> list[str]:
+    """Every code a stage owns."""
+    return [c.code for c in _CODE_LIST if stage in c.stage.split(", ")]
+
+
+def parse(cell: str) -> list[str]:
+    """The codes in one ``issues`` cell."""
+    return [c for c in str(cell).split(";") if c]
+
+
+def join(codes) -> str:
+    """One ``issues`` cell from codes: unique, sorted, ``;``-separated."""
+    return ";".join(sorted(set(codes)))
+
+
+def replace_stage_codes(issues, stage: str, found: dict):
+    """Return ``issues`` (a Series of cells) with ``stage``'s codes replaced by ``found``.
+
+    Parameters
+    ----------
+    issues : pandas.Series of str
+    stage : str
+        The stage whose earlier codes are removed.
+    found : dict
+        ``{code: boolean mask aligned with issues}`` of what the stage found now.
+    """
+    import numpy as np
+
+    owned = set(codes_of(stage))
+    unknown = set(found) - owned
+    if unknown:
+        raise ValueError(f"stage {stage!r} does not own codes {sorted(unknown)}")
+    masks = {code: np.asarray(mask, dtype=bool) for code, mask in found.items()}
+    cells = []
+    for i, cell in enumerate(issues.tolist()):
+        kept = [c for c in parse(cell) if c not in owned]
+        kept += [code for code, mask in masks.items() if mask[i]]
+        cells.append(join(kept))
+    return issues.__class__(cells, index=issues.index, dtype=issues.dtype)
+
+
+def errors_mask(issues):
+    """Boolean Series: the row carries at least one error code (so it is left out of the split)."""
+    error_codes = {c.code for c in _CODE_LIST if c.severity == ERROR}
+    return issues.map(lambda cell: any(c in error_codes for c in parse(cell))).astype(bool)
+
+
+def counts(issues) -> dict[str, int]:
+    """How many rows carry each code, in registry order."""
+    tally: dict[str, int] = {}
+    for cell in issues.tolist():
+        for c in parse(cell):
+            tally[c] = tally.get(c, 0) + 1
+    order = {c: i for i, c in enumerate(CODES)}
+    return dict(sorted(tally.items(), key=lambda kv: (order.get(kv[0], len(order)), kv[0])))
+
+
+FAIL_ON = ("error", "warning", "never")
+
+
+def gate(issues, fail_on: str) -> dict[str, int]:
+    """The codes that fail a ``fail_on`` gate, with their counts; empty when the data passes.
+
+    ``"error"`` fails on any error code, ``"warning"`` on any code at all, ``"never"`` never.
+    """
+    if fail_on not in FAIL_ON:
+        from .errors import ParameterError
+
+        raise ParameterError(f"fail_on must be one of {', '.join(FAIL_ON)}; got fail_on={fail_on!r}")
+    if fail_on == "never":
+        return {}
+    tally = counts(issues)
+    if fail_on == "error":
+        return {c: n for c, n in tally.items() if CODES.get(c) is not None and CODES[c].severity == ERROR}
+    return tally

@@ -1,0 +1,155 @@
+"""Where labels, groups and existing splits come from: folder names or a label table.
+
+Three layouts:
+
+``folders``
+    ``ROOT/<label>/.../file``: the first folder below the root is the label.
+``split-folders``
+    ``ROOT/<train|val|test>/<label>/.../file``: the existing split goes to ``given_split`` (kept for
+    auditing), the next folder is the label.
+``table``
+    a CSV with columns ``path,label`` and optionally ``group``; paths are relative to ROOT.
+"""
+
+from __future__ import annotations
+
+import csv
+import posixpath
+import re
+from pathlib import Path
+
+from .errors import InputError, ParameterError
+
+LAYOUTS = ("auto", "folders", "split-folders", "table")
+# folder names read as a split, and the split they mean (common practice in public datasets)
+SPLIT_FOLDERS = {"train": "train", "training": "train", "val": "val", "valid": "val",
+                 "validation": "val", "dev": "val", "test": "test", "testing": "test"}
+TABLE_COLUMNS = ("path", "label", "group")
+
+
+def detect(paths: list[str], *, labels_table=None) -> str:
+    """The layout a list of relative paths follows.
+
+    Split folders are chosen when every top-level folder is a split name; otherwise class folders.
+    """
+    if labels_table is not None:
+        return "table"
+    tops = {p.split("/", 1)[0] for p in paths if "/" in p}
+    if tops and all(t.lower() in SPLIT_FOLDERS for t in tops):
+        return "split-folders"
+    return "folders"
+
+
+def assign(paths: list[str], layout: str, *, root=None, labels_table=None, group_pattern=None):
+    """Columns ``label``, ``group`` and ``given_split`` for each relative path.
+
+    Parameters
+    ----------
+    paths : list of str
+        POSIX paths relative to the root, as the scanner found them.
+    layout : {"auto", "folders", "split-folders", "table"}
+    root : path-like, optional
+        Needed with a label table, to report listed files that do not exist.
+    labels_table : path-like, optional
+        CSV with ``path,label[,group]``.
+    group_pattern : str, optional
+        Regular expression searched in each path; its first capture group (or the whole match)
+        is the row's group. Table groups win where both are given.
+
+    Returns
+    -------
+    dict of lists
+        ``{"label": [...], "group": [...], "given_split": [...]}`` aligned with ``paths``.
+    """
+    if layout not in LAYOUTS:
+        raise ParameterError(f"layout must be one of {', '.join(LAYOUTS)}; got layout={layout!r}")
+    if layout == "auto":
+        layout = detect(paths, labels_table=labels_table)
+    if layout == "table" and labels_table is None:
+        raise ParameterError("layout='table' needs a label table (--labels TABLE.csv)")
+    n = len(paths)
+    label, group, given = [""] * n, [""] * n, [""] * n
+    if layout == "table":
+        table = read_table(labels_table, root=root, known=set(paths))
+        for i, p in enumerate(paths):
+            label[i], group[i] = table.get(p, ("", ""))
+    else:
+        for i, p in enumerate(paths):
+            parts = p.split("/")
+            if layout == "split-folders" and len(parts) > 1 and parts[0].lower() in SPLIT_FOLDERS:
+                given[i] = SPLIT_FOLDERS[parts[0].lower()]
+                parts = parts[1:]
+            if len(parts) > 1:
+                label[i] = parts[0]
+    if group_pattern:
+        regex = _compile(group_pattern)
+        for i, p in enumerate(paths):
+            if not group[i]:
+                m = regex.search(p)
+                if m:
+                    group[i] = m.group(1) if regex.groups else m.group(0)
+    return {"label": label, "group": group, "given_split": given}
+
+
+def _compile(pattern: str):
+    try:
+        return re.compile(pattern)
+    except re.error as exc:
+        raise ParameterError(f"group pattern {pattern!r} is not a valid regular expression: {exc}") from exc
+
+
+def read_table(path, *, root=None, known=None) -> dict[str, tuple[str, str]]:
+    """Read a label table into ``{relative path: (label, group)}``.
+
+    Every problem is an :class:`InputError` naming the table's line: a missing column, an unknown
+    column, an absolute path or one that escapes the root, a path listed twice, a listed file that
+    is not under the root (when ``known``, the set of paths found there, is given).
+    """
+    path = Path(path)
+    try:
+        text = path.read_bytes().decode("utf-8-sig")
+    except OSError as exc:
+        raise InputError(f"cannot read label table {path}: {exc.strerror}") from exc
+    except UnicodeDecodeError as exc:
+        raise InputError(f"label table {path} is not UTF-8 text (byte {exc.start})") from exc
+    reader = csv.reader(text.splitlines())
+    header = next(reader, None)
+    if not header:
+        raise InputError(f"label table {path} is empty")
+    header = [h.strip() for h in header]
+    missing = [c for c in ("path", "label") if c not in header]
+    if missing:
+        raise InputError(f"label table {path} line 1: missing column(s) {', '.join(missing)}; "
+                         f"expected path,label[,group]")
+    unknown = [c for c in header if c not in TABLE_COLUMNS]
+    if unknown:
+        raise InputError(f"label table {path} line 1: unknown column(s) {', '.join(unknown)}; "
+                         f"expected path,label[,group]")
+    col = {name: header.index(name) for name in header}
+    out: dict[str, tuple[str, str]] = {}
+    for lineno, row in enumerate(reader, start=2):
+        if not any(cell.strip() for cell in row):
+            continue
+        if len(row) != len(header):
+            raise InputError(f"label table {path} line {lineno}: {len(row)} fields, header has {len(header)}")
+        rel = _safe_relative(row[col["path"]], path, lineno)
+        if rel in out:
+            raise InputError(f"label table {path} line {lineno}: {rel!r} is listed twice")
+        if known is not None and rel not in known:
+            where = f" under {root}" if root is not None else ""
+            raise InputError(f"label table {path} line {lineno}: {rel!r} does not exist{where}")
+        group = row[col["group"]].strip() if "group" in col else ""
+        out[rel] = (row[col["label"]].strip(), group)
+    return out
+
+
+def _safe_relative(raw: str, table, lineno: int) -> str:
+    p = raw.strip().replace("\\", "/")
+    if not p:
+        raise InputError(f"label table {table} line {lineno}: empty path")
+    if p.startswith("/") or re.match(r"^[A-Za-z]:/", p):
+        raise InputError(f"label table {table} line {lineno}: {raw!r} is absolute; paths must be relative to the root")
+    norm = posixpath.normpath(p)
+    if norm == ".." or norm.startswith("../"):
+        raise InputError(f"label table {table} line {lineno}: {raw!r} escapes the root")
+    return norm

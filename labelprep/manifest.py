@@ -1,0 +1,310 @@
+"""The manifest: one row per file found, its columns and dtypes, and how it is read and written.
+
+A manifest is a pandas DataFrame. On disk it is CSV (default) or Parquet (a name ending in
+``.parquet``), always written atomically, with a JSON sidecar ``<name>.meta.json`` that records how
+it was made. Every column the project writes is registered in :data:`COLUMNS`, so a reader finds
+each column's meaning here and the stage that computes it by the ``stage`` field.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import tempfile
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Iterator
+
+from .errors import InputError, OutputExistsError
+
+SIDECAR_SUFFIX = ".meta.json"
+FORMAT_TAG = "labelprep-manifest/1"
+
+
+@dataclass(frozen=True)
+class Column:
+    """A registered manifest column: its pandas dtype, the stage that writes it, its meaning."""
+
+    name: str
+    dtype: str  # "str", "Int64", "Float64" or "boolean"
+    stage: str
+    meaning: str
+
+
+_COLUMN_LIST = [
+    # core columns: names and meanings are stable (users script against them)
+    Column("path", "str", "scan", "POSIX path relative to the scanned root"),
+    Column("label", "str", "scan", "class label; empty when unknown"),
+    Column("group", "str", "scan", "user group id (same subject, session or source); empty when not given"),
+    Column("bytes", "Int64", "scan", "file size in bytes"),
+    Column("width", "Int64", "scan", "pixel width after EXIF orientation; empty when undecodable"),
+    Column("height", "Int64", "scan", "pixel height after EXIF orientation; empty when undecodable"),
+    Column("format", "str", "scan", "format detected from the file's first bytes (jpeg, png, gif, bmp, tiff, webp, ...); empty when not an image"),
+    Column("sha256", "str", "scan", "SHA-256 of the file's bytes, 64 lowercase hex digits"),
+    Column("phash", "str", "scan", "64-bit DCT perceptual hash of the oriented image, 16 lowercase hex digits; empty when undecodable"),
+    Column("issues", "str", "check, group", "';'-separated issue codes, sorted; empty when clean"),
+    Column("dup_group", "Int64", "group", "id shared by every member of a near-duplicate cluster (exact copies included); empty for a file with no copy"),
+    Column("split", "str", "split", "train, val or test; empty for rows left out"),
+    # scan facts
+    Column("given_split", "str", "scan", "split named by a train/val/test folder in the source tree; empty otherwise"),
+    Column("mtime_ns", "Int64", "scan", "modification time in nanoseconds, used to skip unchanged files on a rescan"),
+    Column("mode", "str", "scan", "Pillow mode of the decoded image (RGB, L, CMYK, I;16, P, ...)"),
+    Column("frames", "Int64", "scan", "number of frames (more than 1 for animations)"),
+    Column("has_alpha", "boolean", "scan", "the image has an alpha channel or a transparent palette entry"),
+    Column("has_gps", "boolean", "scan", "the EXIF data holds GPS location tags"),
+    Column("spread", "Float64", "scan", "standard deviation of luminance (0-255) on the hash thumbnail; near 0 for a blank image"),
+    Column("fault", "str", "scan", "why the file could not be fully decoded: empty, not-image, unreadable, truncated, pixel-limit, timeout"),
+    Column("fault_detail", "str", "scan", "one line from the decoder explaining the fault"),
+    # grouping
+    Column("bundle", "Int64", "group", "id of the rows that must share one split: near-duplicate clusters joined with user groups"),
+    Column("keeper", "boolean", "group", "the one file kept per near-duplicate cluster (highest resolution, then largest file, then path); true for files with no copy"),
+    # splitting
+    Column("fold", "Int64", "split", "cross-validation fold (0..K-1) when --folds K was asked; empty otherwise"),
+]
+
+COLUMNS: dict[str, Column] = {c.name: c for c in _COLUMN_LIST}
+CORE_COLUMNS = ("path", "label", "group", "bytes", "width", "height", "format", "sha256",
+                "phash", "issues", "dup_group", "split")
+
+
+def order_columns(df):
+    """Return ``df`` with registered columns first (registry order), then any others sorted."""
+    known = [c for c in COLUMNS if c in df.columns]
+    extra = sorted(c for c in df.columns if c not in COLUMNS)
+    return df[known + extra]
+
+
+def coerce(df):
+    """Return a copy of ``df`` with every registered column cast to its dtype.
+
+    String columns hold ``""`` rather than missing values, so that a CSV round trip is exact,
+    and use the object dtype: file names that are not UTF-8 arrive surrogate-escaped (PEP 383),
+    which Arrow-backed string columns cannot hold.
+    """
+    import pandas as pd
+
+    out = df.copy()
+    for name in out.columns:
+        col = COLUMNS.get(name)
+        if col is None:
+            continue
+        if col.dtype == "str":
+            out[name] = out[name].astype(object).where(out[name].notna(), "").map(str).astype(object)
+        elif col.dtype == "boolean":
+            s = out[name]
+            if s.dtype == object:
+                s = s.map({"True": True, "False": False, "true": True, "false": False,
+                           True: True, False: False, "": pd.NA}, na_action="ignore")
+            out[name] = s.astype("boolean")
+        else:
+            s = out[name]
+            if s.dtype == object:
+                s = s.replace("", pd.NA)
+            if col.dtype == "Int64":
+                out[name] = pd.to_numeric(s).astype("Int64")
+            else:
+                out[name] = pd.to_numeric(s).astype("Float64")
+    return order_columns(out)
+
+
+def empty(columns=CORE_COLUMNS):
+    """An empty manifest with the given registered columns."""
+    import pandas as pd
+
+    return coerce(pd.DataFrame({c: [] for c in columns}))
+
+
+# ---------------------------------------------------------------- reading and writing
+
+def is_parquet(path) -> bool:
+    return str(path).lower().endswith(".parquet")
+
+
+def sidecar_path(path) -> Path:
+    path = Path(path)
+    return path.with_name(path.name + SIDECAR_SUFFIX)
+
+
+def read(path):
+    """Read a manifest written by :func:`write` (CSV or Parquet) with every column's dtype restored.
+
+    Raises
+    ------
+    InputError
+        When the file is missing or is not a manifest (no ``path`` column).
+    """
+    import pandas as pd
+
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"manifest {path} does not exist")
+    try:
+        if is_parquet(path) or path.is_dir():
+            df = pd.read_parquet(path)
+        else:
+            df = pd.read_csv(path, dtype=object, keep_default_na=False, encoding="utf-8",
+                             encoding_errors="surrogateescape")
+    except ImportError as exc:
+        raise InputError(f"reading {path} needs pyarrow: pip install 'labelprep[parquet]'") from exc
+    except (ValueError, OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"cannot read manifest {path}: {exc}") from exc
+    if "path" not in df.columns:
+        raise InputError(f"{path} is not a labelprep manifest (it has no 'path' column)")
+    return coerce(df)
+
+
+def to_csv_bytes(df) -> bytes:
+    """The exact bytes :func:`write` puts in a CSV manifest (UTF-8, ``\\n`` line ends)."""
+    out = coerce(df)
+    text = out.to_csv(index=False, lineterminator="\n", float_format="%.4f")
+    return text.encode("utf-8", errors="surrogateescape")
+
+
+def write(df, path, *, meta: dict | None = None, force: bool = False) -> Path:
+    """Write ``df`` to ``path`` atomically, and its sidecar beside it.
+
+    Parameters
+    ----------
+    df : pandas.DataFrame
+        The manifest.
+    path : str or Path
+        Target file; ``.parquet`` selects Parquet, anything else CSV.
+    meta : dict, optional
+        Facts recorded in the sidecar (options, seed, root); tool version and time are added.
+    force : bool
+        Replace ``path`` even when it holds something that is not a labelprep manifest.
+
+    Returns
+    -------
+    Path
+        The path written.
+    """
+    path = Path(path)
+    guard_output(path, force=force)
+    if is_parquet(path):
+        try:
+            import pyarrow  # noqa: F401
+        except ImportError as exc:
+            raise InputError(f"writing {path} needs pyarrow: pip install 'labelprep[parquet]'") from exc
+        with atomic_path(path) as tmp:
+            coerce(df).to_parquet(tmp, index=False)
+    else:
+        data = to_csv_bytes(df)
+        with atomic_path(path) as tmp:
+            Path(tmp).write_bytes(data)
+    write_sidecar(path, meta or {})
+    return path
+
+
+def guard_output(path, *, force: bool, marker: bytes | None = None) -> None:
+    """Refuse to replace a file that labelprep did not write, unless ``force``.
+
+    A manifest is recognised by its sidecar or its first bytes; other outputs (reports) by
+    ``marker`` appearing in their first 4 KiB.
+    """
+    path = Path(path)
+    if not path.exists() or force:
+        return
+    if path.is_dir():
+        raise OutputExistsError(f"{path} is a folder; give a file name")
+    if marker is None and (sidecar_path(path).is_file() or _looks_like_manifest(path)):
+        return
+    if marker is not None and marker in _head(path, 4096):
+        return
+    what = "a labelprep manifest" if marker is None else "a labelprep output"
+    raise OutputExistsError(f"{path} exists and is not {what}; pass --force to replace it")
+
+
+def _head(path: Path, n: int) -> bytes:
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(n)
+    except OSError:
+        return b""
+
+
+def _looks_like_manifest(path: Path) -> bool:
+    head = _head(path, 64)
+    return head.startswith(b"path,") or head.startswith(b"PAR1")
+
+
+@contextlib.contextmanager
+def atomic_path(path) -> Iterator[str]:
+    """Yield a temporary name beside ``path``; on success rename it over ``path``, else remove it.
+
+    The rename is atomic on POSIX filesystems, so a reader sees the old file or the new one,
+    never half of either, even when the process is killed mid-write.
+    """
+    path = Path(path)
+    if not path.parent.is_dir():
+        raise InputError(f"cannot write {path}: folder {path.parent} does not exist")
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    except OSError as exc:
+        raise InputError(f"cannot write {path}: {exc.strerror}") from exc
+    os.close(fd)
+    try:
+        yield tmp
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise InputError(f"cannot write {path}: {exc.strerror or exc}") from exc
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def write_text(path, text: str, *, force: bool = True) -> Path:
+    """Write a text output (report, list) atomically."""
+    path = Path(path)
+    with atomic_path(path) as tmp:
+        Path(tmp).write_text(text, encoding="utf-8")
+    return path
+
+
+def write_sidecar(path, meta: dict) -> Path:
+    """Write the JSON sidecar of manifest ``path``, merging ``meta`` into what is there.
+
+    Stages record their options under their own key (``meta["stages"][name]``), so a manifest
+    that went through scan, check and group keeps all three.
+    """
+    from . import __version__
+
+    side = sidecar_path(path)
+    old = read_sidecar(path)
+    stages = dict(old.get("stages", {}))
+    stages.update(meta.get("stages", {}))
+    merged = {**old, **meta, "stages": stages, "format": FORMAT_TAG, "tool": "labelprep",
+              "version": __version__,
+              "written": datetime.now(timezone.utc).isoformat(timespec="seconds")}
+    text = json.dumps(_jsonable(merged), indent=2, sort_keys=True) + "\n"
+    with atomic_path(side) as tmp:
+        Path(tmp).write_text(text, encoding="utf-8")
+    return side
+
+
+def read_sidecar(path) -> dict:
+    """The sidecar of manifest ``path`` as a dict; empty when there is none or it is unreadable."""
+    side = sidecar_path(path)
+    try:
+        return json.loads(side.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+
+
+def _jsonable(value: Any):
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, Path):
+        return str(value)
+    if isinstance(value, (str, int, float, bool)) or value is None:
+        return value
+    return str(value)

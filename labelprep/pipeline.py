@@ -1,0 +1,83 @@
+"""``prepare``: scan -> check -> group -> split -> report, in one call, into one output folder."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from . import defaults
+from .errors import InputError
+
+MANIFEST_NAME = "manifest.csv"
+REPORT_JSON = "report.json"
+REPORT_HTML = "report.html"
+
+
+def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, include_hidden=False,
+            jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
+            max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, ratios=defaults.RATIOS,
+            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None):
+    """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
+
+    A manifest already in ``out`` from an earlier run is used as the rescan cache: unchanged files
+    are not decoded again. Options are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
+    :func:`~labelprep.group` and :func:`~labelprep.split`; ``keep_from`` is a manifest path or
+    DataFrame whose split is kept.
+
+    Returns
+    -------
+    (DataFrame, dict)
+        The final manifest and the report summary (what ``report.json`` holds).
+
+    Examples
+    --------
+    >>> m, summary = prepare("photos/", "prepared/", seed=7)   # doctest: +SKIP
+    >>> summary["splits"]["test"]["count"]                   # doctest: +SKIP
+    """
+    from . import manifest
+    from .checks import check
+    from .clusters import group
+    from .reports import report
+    from .scanner import scan
+    from .splits import split
+
+    root, out = Path(root), Path(out)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"--out {out} exists and is not a folder")
+    out.mkdir(parents=True, exist_ok=True)
+    target = out / MANIFEST_NAME
+    manifest.guard_output(target, force=force)
+    for name in (REPORT_JSON, REPORT_HTML):
+        manifest.guard_output(out / name, force=force, marker=b"labelprep")
+    previous = _previous(target)
+    if isinstance(keep_from, (str, Path)):
+        keep_from = manifest.read(keep_from)
+
+    m = scan(root, layout=layout, labels=labels, group_pattern=group_pattern,
+             include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
+             previous=previous, progress=progress)
+    scan_facts = m.attrs.get("scan", {})
+    m = check(m, min_side=min_side, max_pixels=max_pixels)
+    m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, progress=progress)
+    m = split(m, ratios=ratios, seed=seed, folds=folds, keep_from=keep_from, progress=progress)
+    options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
+               "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,
+               "max_distance": max_distance, "keep_conflicts": keep_conflicts,
+               "ratios": list(ratios), "seed": seed, "folds": folds}
+    meta = {"root": str(root.resolve()), "seed": seed,
+            "stages": {"prepare": {"options": options, "scan": scan_facts}}}
+    manifest.write(m, target, meta=meta, force=True)
+    summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=root,
+                     meta=manifest.read_sidecar(target))
+    return m, summary
+
+
+def _previous(target: Path):
+    """The manifest an earlier run left in the output folder (the rescan cache), if any."""
+    from . import manifest
+
+    if not target.is_file():
+        return None
+    try:
+        return manifest.read(target)
+    except InputError:
+        return None  # not a manifest: guard_output already required --force to replace it

@@ -1,0 +1,198 @@
+"""The report of a manifest: one summary dict, written as JSON, Markdown and a self-contained HTML page.
+
+:func:`report` builds the summary (exactly what ``report.json`` holds; its keys are documented in
+``manifests/README.md``) and writes the files asked for. :func:`terminal_table` is the plain-text
+view the command line prints. The HTML page is rendered in :mod:`labelprep.reports.page` from the
+templates beside this file.
+"""
+
+from __future__ import annotations
+
+import json as _json
+import os
+
+from .. import codes
+from ..errors import InputError, ParameterError
+
+FORMAT_TAG = "labelprep-report/1"
+
+
+def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=None) -> dict:
+    """Summarise ``manifest`` and write the report files that are asked for.
+
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        Any labelprep manifest; it needs ``path`` and ``label``. Columns a stage has not written
+        yet (``issues``, ``dup_group``, ``split``, ...) count as empty.
+    json, html, markdown : str or Path, optional
+        Files to write (atomically); each is left alone when not given.
+    root : str or Path, optional
+        The scanned folder, which ``path`` is relative to. Only the HTML page uses it, to embed
+        thumbnails of near-duplicates; without it the page shows paths only.
+    meta : dict, optional
+        The manifest's sidecar (:func:`labelprep.manifest.read_sidecar`): the seed, root and stage
+        options it records are shown.
+
+    Returns
+    -------
+    dict
+        The summary, JSON-able: ``format``, ``version``, ``files``, ``in_split``, ``left_out``,
+        ``splits``, ``classes``, ``balance`` (:func:`labelprep.balance.by_split`), ``issues``,
+        ``near_duplicates``, ``seed``, ``root``, ``options``.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": ["a.png", "b.png", "c.png"], "label": ["cat", "dog", "cat"],
+    ...                   "split": ["train", "train", ""], "issues": ["", "", "too-small"]})
+    >>> s = report(m)
+    >>> s["files"], s["in_split"], s["splits"]["train"]["count"]
+    (3, 2, 2)
+    >>> s["issues"][0]["code"], s["issues"][0]["rows"]
+    ('too-small', 1)
+    """
+    for name, value in (("json", json), ("html", html), ("markdown", markdown), ("root", root)):
+        if value is not None and not isinstance(value, (str, os.PathLike)):
+            raise TypeError(f"{name} must be a path (str or Path), got {type(value).__name__}")
+    if meta is not None and not isinstance(meta, dict):
+        raise TypeError(f"meta must be a dict (the manifest's sidecar), got {type(meta).__name__}")
+    if root is not None and not os.path.isdir(root):
+        raise ParameterError(f"root={str(root)!r} is not a folder")
+    if "path" not in manifest.columns:
+        raise InputError("the manifest has no 'path' column")
+
+    m = _complete(manifest)
+    summary = _summary(m, meta or {})
+    from ..manifest import write_text
+
+    if json is not None:
+        write_text(json, to_json(summary))
+    if markdown is not None:
+        from .text import markdown as render_markdown
+
+        write_text(markdown, render_markdown(summary))
+    if html is not None:
+        from .page import render
+
+        write_text(html, render(m, summary, root=root))
+    return summary
+
+
+def to_json(summary: dict) -> str:
+    """The text of ``report.json``: keys in summary order, two-space indent, a final newline."""
+    return _json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+def terminal_table(summary: dict) -> str:
+    """A plain-text view of ``summary`` for a terminal: totals, classes per split, issues.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": ["a.png", "b.png"], "label": ["cat", "dog"], "split": ["train", "val"]})
+    >>> print(terminal_table(report(m)).splitlines()[0])
+    2 files: 2 in a split, 0 left out; 2 classes
+    """
+    from .text import terminal
+
+    return terminal(summary)
+
+
+def _complete(manifest):
+    """``manifest`` with the columns the report reads, missing ones added empty."""
+    import pandas as pd
+
+    m = manifest.copy()
+    for name in ("label", "split", "issues", "phash"):
+        m[name] = m[name].fillna("").astype(str) if name in m.columns else ""
+    m["dup_group"] = (pd.to_numeric(m["dup_group"]).astype("Int64") if "dup_group" in m.columns
+                      else pd.array([pd.NA] * len(m), dtype="Int64"))
+    if "keeper" not in m.columns:
+        m["keeper"] = pd.array([pd.NA] * len(m), dtype="boolean")
+    return m.sort_values("path", kind="stable").reset_index(drop=True)
+
+
+def _summary(m, meta: dict) -> dict:
+    from .. import __version__
+    from ..balance import by_split
+
+    balance = by_split(m)
+    in_split = int((m["split"] != "").sum())
+    splits = {name: {"count": stats["rows"], "share": stats["rows"] / in_split if in_split else 0.0}
+              for name, stats in balance["splits"].items() if name != "unassigned"}
+    return {
+        "format": FORMAT_TAG,
+        "version": __version__,
+        "files": len(m),
+        "in_split": in_split,
+        "left_out": len(m) - in_split,
+        "splits": splits,
+        "classes": balance["classes"],
+        "balance": balance,
+        "issues": _issues(m),
+        "near_duplicates": _near_duplicates(m),
+        "seed": _seed(meta),
+        "root": meta.get("root"),
+        "options": _jsonable(meta.get("stages", {})),
+    }
+
+
+def _issues(m) -> list:
+    """One entry per code found: code, severity, meaning, rows (registry order)."""
+    found = []
+    for code, rows in codes.counts(m["issues"]).items():
+        known = codes.CODES.get(code)
+        found.append({"code": code, "severity": known.severity if known else "unknown",
+                      "meaning": known.meaning if known else "not a code this version knows",
+                      "rows": rows})
+    return found
+
+
+def cluster_table(m):
+    """The near-duplicate clusters of a completed manifest, ranked most urgent first.
+
+    Returns a DataFrame indexed by ``dup_group`` with ``size``, ``conflict`` (its labels
+    disagree) and ``leak`` (its files sit in more than one split). Conflicts come first, then
+    leaks, then larger clusters, then lower ids.
+    """
+    import pandas as pd
+
+    d = m[m["dup_group"].notna()]
+    size = d.groupby("dup_group").size()
+    assigned = d[d["split"] != ""]
+    table = pd.DataFrame({
+        "size": size,
+        "conflict": d.groupby("dup_group")["label"].nunique() > 1,
+        "leak": assigned.groupby("dup_group")["split"].nunique().reindex(size.index, fill_value=0) > 1,
+    })
+    table.index = table.index.astype("int64")
+    rank = table.assign(_calm=~table["conflict"], _kept=~table["leak"], _small=-table["size"],
+                        _id=table.index)
+    order = rank.sort_values(["_calm", "_kept", "_small", "_id"], kind="stable").index
+    return table.loc[order]
+
+
+def _near_duplicates(m) -> dict:
+    table = cluster_table(m)
+    return {
+        "clusters": len(table),
+        "files": int(table["size"].sum()),
+        "label_conflicts": int(table["conflict"].sum()),
+        "across_splits": int(table["leak"].sum()),
+    }
+
+
+def _seed(meta: dict):
+    """The seed recorded in the sidecar: at its top level, else the first stage that has one."""
+    if "seed" in meta:
+        return meta["seed"]
+    for options in meta.get("stages", {}).values():
+        if isinstance(options, dict) and "seed" in options:
+            return options["seed"]
+    return None
+
+
+def _jsonable(value):
+    """``value`` with anything json cannot write turned into its string form."""
+    return _json.loads(_json.dumps(value, default=str))

@@ -1,0 +1,145 @@
+"""The HTML report: one self-contained page (styles inline, thumbnails as data: URIs, no script).
+
+The page is rendered from ``templates/report.html.j2`` with autoescaping on. Its Content-Security-
+Policy forbids every network fetch, so it opens the same offline as online. To stay quick and small
+on big manifests it caps how much it lists and says so where it does.
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+from pathlib import Path, PurePosixPath
+
+from .. import codes
+from . import cluster_table
+from .text import UNASSIGNED, _balance_rows, _class_rows, _warning_lines, flatten, plural
+
+TEMPLATES = Path(__file__).parent / "templates"
+THUMB_SIDE = 120          # CSS pixels of a tile; images are made at twice that for sharp phone screens
+FILES_PER_ISSUE = 200     # files listed under each issue code
+CLUSTERS_LISTED = 500     # clusters listed at all
+CLUSTERS_WITH_THUMBS = 60  # of those, the first ones get thumbnails
+MEMBERS_PER_STRIP = 16    # files drawn in one cluster's strip
+SPLIT_COLOURS = {"train": "#2f6690", "val": "#c9822b", "test": "#3a7d44"}
+OTHER_COLOUR = "#7a6f9b"
+# a file with one of these codes may not decode (or may be a decompression bomb): no thumbnail
+_NO_PREVIEW = {c for c in codes.codes_of("check") if codes.CODES[c].severity == codes.ERROR}
+
+
+def render(m, summary: dict, *, root=None) -> str:
+    """The HTML text of the report of completed manifest ``m`` with its ``summary``."""
+    import jinja2
+
+    env = jinja2.Environment(loader=jinja2.FileSystemLoader(TEMPLATES), autoescape=True,
+                             trim_blocks=True, lstrip_blocks=True, undefined=jinja2.StrictUndefined)
+    env.filters["plural"] = plural
+    clusters, clusters_total = _clusters(m, root)
+    class_header, class_rows = _class_rows(summary)
+    balance_header, balance_rows = _balance_rows(summary)
+    return env.get_template("report.html.j2").render(
+        s=summary,
+        colours=_colours(summary),
+        chart=_chart(summary),
+        class_header=class_header, class_rows=class_rows,
+        balance_header=balance_header, balance_rows=balance_rows,
+        warnings=_warning_lines(summary),
+        issues=_issue_files(m, summary),
+        files_per_issue=FILES_PER_ISSUE,
+        clusters=clusters, clusters_total=clusters_total,
+        clusters_listed=CLUSTERS_LISTED, clusters_with_thumbs=CLUSTERS_WITH_THUMBS,
+        members_per_strip=MEMBERS_PER_STRIP, thumb_side=THUMB_SIDE,
+        has_root=root is not None,
+        options=[(stage, flatten(value)) for stage, value in summary["options"].items()],
+    )
+
+
+def _colours(summary: dict) -> dict:
+    names = [n for n in summary["balance"]["splits"] if n != UNASSIGNED]
+    return {n: SPLIT_COLOURS.get(n, OTHER_COLOUR) for n in names}
+
+
+def _chart(summary: dict) -> list:
+    """Per class, one bar per split: ``(class, [(split, count, width %)])``; widths share one scale."""
+    splits = {n: s for n, s in summary["balance"]["splits"].items() if n != UNASSIGNED}
+    largest = max([s["counts"][c] for s in splits.values() for c in summary["classes"]] + [1])
+    return [(c, [(n, s["counts"][c], round(100 * s["counts"][c] / largest, 1)) for n, s in splits.items()])
+            for c in summary["classes"]]
+
+
+def _issue_files(m, summary: dict) -> list:
+    """Per issue code found: its summary entry and the first files carrying it."""
+    cells = m["issues"].tolist()
+    found = []
+    for entry in summary["issues"]:
+        code = entry["code"]
+        hits = [i for i, cell in enumerate(cells) if code in codes.parse(cell)][:FILES_PER_ISSUE]
+        rows = m.iloc[hits]
+        found.append({**entry, "files": list(zip(rows["path"], rows["label"], rows["split"]))})
+    return found
+
+
+def _clusters(m, root) -> tuple[list, int]:
+    """The clusters to draw, most urgent first, with members, distances and thumbnails."""
+    table = cluster_table(m)
+    shown = table.head(CLUSTERS_LISTED)
+    members_of = dict(tuple(m[m["dup_group"].isin(shown.index)].groupby("dup_group", sort=False)))
+    out = []
+    for rank, (gid, facts) in enumerate(shown.iterrows()):
+        members = members_of[gid]
+        keeper_first = members.assign(_other=~members["keeper"].fillna(False).astype(bool))
+        members = keeper_first.sort_values(["_other", "path"], kind="stable")
+        keeper_hash = members["phash"].iloc[0]
+        with_thumbs = root is not None and rank < CLUSTERS_WITH_THUMBS
+        files = []
+        for i, row in enumerate(members.itertuples(index=False)):
+            draw = with_thumbs and i < MEMBERS_PER_STRIP
+            files.append({
+                "path": row.path, "label": row.label, "split": row.split or "left out",
+                "keeper": i == 0, "distance": hamming(keeper_hash, row.phash),
+                "thumb": thumbnail(root, row.path) if draw and not _NO_PREVIEW & set(codes.parse(row.issues)) else None,
+                "drawn": draw,
+            })
+        out.append({"id": int(gid), "size": int(facts["size"]), "conflict": bool(facts["conflict"]),
+                    "leak": bool(facts["leak"]), "files": files})
+    return out, len(table)
+
+
+def hamming(a: str, b: str):
+    """Bits that differ between two 16-hex-digit perceptual hashes; None when either is missing.
+
+    Examples
+    --------
+    >>> hamming("ffff000000000000", "0fff000000000001")
+    5
+    """
+    if not a or not b:
+        return None
+    return (int(a, 16) ^ int(b, 16)).bit_count()
+
+
+def thumbnail(root, path: str):
+    """A ``data:image/jpeg;base64,...`` URI of ``root/path`` shrunk to the tile size, or None.
+
+    Never raises: a file that is gone, unreadable or outside ``root`` gets no thumbnail.
+    """
+    from PIL import Image, ImageOps
+
+    rel = PurePosixPath(path)
+    if rel.is_absolute() or ".." in rel.parts:
+        return None
+    side = 2 * THUMB_SIDE
+    try:
+        with Image.open(Path(root) / rel) as im:
+            im.draft("RGB", (side, side))  # JPEG: decode at reduced scale, much faster
+            im = ImageOps.exif_transpose(im)
+            im.thumbnail((side, side))
+            if im.mode in ("RGBA", "LA", "PA") or (im.mode == "P" and "transparency" in im.info):
+                rgba = im.convert("RGBA")
+                im = Image.new("RGB", rgba.size, "white")
+                im.paste(rgba, mask=rgba.getchannel("A"))
+            buffer = io.BytesIO()
+            im.convert("RGB").save(buffer, "JPEG", quality=72)
+    except Exception:  # noqa: BLE001 - any decoder failure only means "no preview"
+        return None
+    return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")

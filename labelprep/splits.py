@@ -1,0 +1,651 @@
+"""Group-aware, stratified train/val/test assignment, k folds, and keeping an earlier split.
+
+Units
+-----
+Rows that must share a split form a *unit*: the ``bundle`` written by the group stage
+(near-duplicate clusters joined with user groups). Without a ``bundle`` column the units are
+derived here from ``group`` and ``dup_group`` (rows linked by either share a unit). A row linked to
+nothing is a unit of its own. Rows carrying an error code are left out (``split`` is ``""``).
+
+Objective
+---------
+For the splits ``k`` with target ratios ``r_k``, ``N`` usable rows and ``n_c`` rows of class
+``c``, let ``X_kc`` be the rows of class ``c`` placed in split ``k``, ``S_k`` the rows in split
+``k`` and ``w_k = 1 / (r_k N)**2``. The optimiser minimises::
+
+    J = sum_k w_k * [ sum_c (X_kc - r_k n_c)**2 + (S_k - r_k N)**2 ]  +  P * Z
+
+``Z`` counts the (split, class) cells left empty although the class has at least as many units as
+there are splits; ``P = 1`` outweighs any share error, so every split gets every class whenever
+that is possible. Dividing by the square of the split's target size makes each term about the
+squared deviation of the class's share in that split (or of the split's relative size), so the
+small val and test splits are matched as closely as train.
+
+Search
+------
+1. Units in order of size, largest first (ties in seeded random order). The largest
+   ``_GREEDY_UNITS`` are placed one by one where ``J`` grows least; the rest, which are small, are
+   placed in one vectorised pass that fills what each class still lacks in each split along a
+   cumulative sum of unit sizes.
+2. Local moves: each round computes, for every movable unit and every split, the exact change of
+   ``J`` when that unit alone moves there (vectorised over units). The best move per (from, to,
+   main class) are applied together when the batch lowers ``J``; otherwise the batch is halved
+   until it does. The search stops when no move lowers ``J`` or after ``_MAX_ROUNDS`` rounds.
+3. Pair swaps: for every pair of splits, the unit pairs of the same main class whose exchange
+   lowers ``J`` most (a move alone cannot fix a split holding one unit too large and lacking a
+   smaller one). Rounds of moves and swaps alternate until neither helps.
+
+Every step is a function of the manifest and the seed only, so the same input and seed give a
+byte-identical manifest.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from . import codes
+from .errors import ParameterError
+
+SPLIT_NAMES = ("train", "val", "test")
+THIN_CODE = "thin-class"
+
+# the largest units are placed one at a time (exact greedy); beyond this many, the rest go in one
+# vectorised pass, which keeps a million-row manifest fast while local moves clean up after it
+_GREEDY_UNITS = 4096
+# upper bound on improvement rounds; every round strictly lowers J, so this only caps run time
+_MAX_ROUNDS = 400
+# units per split tried in a swap round (those whose move alone costs least), so a round costs
+# at most this squared per pair of splits
+_SWAP_CANDIDATES = 256
+# weight of an empty (split, class) cell that could have been filled; far above any share term
+_EMPTY_CELL_PENALTY = 1.0
+# objective changes smaller than this are rounding, not improvement
+_TOL = 1e-12
+# a unit holding kept rows from several old splits follows the first of these (test never loses)
+_PRECEDENCE = ("test", "val", "train")
+
+
+def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, progress=None):
+    """Assign every usable row to train, val or test, keeping each unit in one split.
+
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        Needs ``path`` and ``label``; reads ``issues`` (rows with an error code are left out),
+        ``bundle`` (or else ``group`` and ``dup_group``), and ``sha256`` for ``keep_from``.
+    ratios : sequence of float
+        Target shares summing to 1. Three numbers are train, val, test; two are train, test
+        (no val). Zeros are allowed except for train.
+    seed : int
+        Breaks ties between equal-sized units; the same seed gives the same result.
+    folds : int, optional
+        When given (2 or more), ``split`` holds only ``train`` and ``test`` (the last ratio is
+        the test share; a val share joins train) and every train row gets a ``fold`` from 0 to
+        ``folds - 1``, with the same unit and class-share guarantees.
+    keep_from : pandas.DataFrame, optional
+        An older manifest with a ``split`` column. Each row found there (by ``sha256``, else by
+        ``path``) keeps its split (and its fold, when folds are asked and it had one); only the
+        other rows are placed. A new row in a unit with a kept row follows it; a unit holding
+        kept rows of several splits follows test, then val, then train.
+    progress : callable, optional
+        ``progress(iterable, total=int, label=str)`` wrapped around the one-by-one placement.
+
+    Returns
+    -------
+    pandas.DataFrame
+        A copy of ``manifest`` with ``split`` (``""`` for rows left out), ``fold`` (Int64, empty
+        unless ``folds``) and the warning code ``thin-class`` in ``issues`` on rows of a class
+        with fewer units than there are splits (or folds). :func:`split_summary` tells what
+        was kept and placed.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": [f"{i}.png" for i in range(20)],
+    ...                   "label": ["cat", "dog"] * 10, "issues": [""] * 20})
+    >>> out = split(m, ratios=(0.8, 0.2), seed=1)
+    >>> out["split"].value_counts().to_dict()
+    {'train': 16, 'test': 4}
+    >>> out.groupby("split")["label"].value_counts().to_dict()["test", "cat"]
+    2
+    """
+    import pandas as pd
+
+    _check_manifest(manifest, "manifest", ("path", "label"))
+    shares = _check_ratios(ratios)
+    seed = _check_seed(seed)
+    folds = _check_folds(folds)
+    if keep_from is not None:
+        _check_manifest(keep_from, "keep_from", ("path", "split"))
+
+    order = manifest["path"].astype(str).to_numpy().argsort(kind="stable")
+    frame = manifest.iloc[order]
+    usable = _usable(frame)
+    rows = frame[usable]
+    units = _Units.from_rows(rows)
+    old_split, old_fold = _old_assignment(rows, keep_from)
+    progress = progress or (lambda iterable, **_: iterable)
+
+    split_of_row = np.full(len(frame), "", dtype=object)
+    fold_of_row = np.full(len(frame), -1, dtype=np.int64)
+    thin = np.zeros(units.n_classes, dtype=bool)
+    if units.n_units:
+        if folds is None:
+            names, targets = SPLIT_NAMES, shares
+        else:  # train pool and test; the val share joins train, old val rows count as train
+            names, targets = ("train", "test"), np.array([1.0 - shares[-1], shares[-1]])
+            old_split = np.where(old_split == "val", "train", old_split)
+        fixed = _fixed_splits(units, old_split, names)
+        assigned, thin = _assign(units, targets, fixed, _rng(seed, 0), progress)
+        row_split = assigned[units.row_unit]
+        split_of_row[usable] = np.asarray(names, dtype=object)[row_split]
+        if folds is not None:
+            pool = assigned == 0
+            sub = units.subset(pool)
+            valid = np.where((old_fold >= 0) & (old_fold < folds), old_fold, -1)
+            sub_fixed = sub.fixed_from_rows(valid[row_split == 0])
+            fold_units, thin_folds = _assign(sub, np.full(folds, 1.0 / folds), sub_fixed,
+                                             _rng(seed, 1), progress)
+            thin |= thin_folds
+            rows_fold = np.full(len(rows), -1, dtype=np.int64)
+            rows_fold[row_split == 0] = fold_units[sub.row_unit]
+            fold_of_row[usable] = rows_fold
+
+    out = manifest.copy()
+    inverse = np.empty_like(order)
+    inverse[order] = np.arange(len(order))
+    out["split"] = pd.Series(split_of_row[inverse], index=out.index, dtype=object).astype(str)
+    fold_values = fold_of_row[inverse]
+    out["fold"] = pd.array(np.where(fold_values >= 0, fold_values, 0), dtype="Int64")
+    out.loc[fold_values < 0, "fold"] = pd.NA
+    thin_rows = np.zeros(len(frame), dtype=bool)
+    thin_rows[usable] = thin[units.row_class]
+    issues = out["issues"] if "issues" in out.columns else pd.Series("", index=out.index, dtype=str)
+    out["issues"] = codes.replace_stage_codes(issues.fillna("").astype(str), "split",
+                                              {THIN_CODE: thin_rows[inverse]})
+    return out
+
+
+def split_summary(manifest, *, keep_from=None) -> dict:
+    """What a split holds, and with ``keep_from`` how it relates to the older manifest.
+
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        A manifest returned by :func:`split` (needs ``path``, ``label`` and ``split``).
+    keep_from : pandas.DataFrame, optional
+        The older manifest that was passed to :func:`split`.
+
+    Returns
+    -------
+    dict
+        ``rows``; ``assigned`` and ``left_out`` (rows with an empty split); ``splits``
+        (rows per split name); ``folds`` (rows per fold, ``{}`` without folds);
+        ``thin_classes`` (labels carrying the ``thin-class`` warning); ``missing``
+        (``{split: [labels present elsewhere but absent here]}``, only splits that lack one).
+        With ``keep_from`` also ``kept`` (rows found in the older split and still there),
+        ``placed`` (rows not found there that got a split), ``moved`` (rows found there whose
+        split changed: a val row becomes train when folds are asked) and ``dropped`` (rows found
+        there that are now left out, e.g. because they carry an error code).
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> old = pd.DataFrame({"path": ["a.png"], "label": ["cat"], "split": ["test"]})
+    >>> new = pd.DataFrame({"path": ["a.png", "b.png"], "label": ["cat", "cat"],
+    ...                     "split": ["test", "train"]})
+    >>> s = split_summary(new, keep_from=old)
+    >>> s["kept"], s["placed"], s["moved"]
+    (1, 1, 0)
+    """
+    _check_manifest(manifest, "manifest", ("path", "label", "split"))
+    split_col = manifest["split"].fillna("").astype(str)
+    labels = manifest["label"].fillna("").astype(str)
+    assigned = split_col != ""
+    names = [n for n in SPLIT_NAMES if (split_col == n).any()]
+    names += sorted(set(split_col[assigned]) - set(SPLIT_NAMES))
+    present = set(labels[assigned])
+    missing = {}
+    for name in names:
+        absent = sorted(present - set(labels[split_col == name]))
+        if absent:
+            missing[name] = absent
+    folds = {}
+    if "fold" in manifest.columns:
+        fold = manifest["fold"].dropna()
+        folds = {int(k): int(v) for k, v in fold.astype("int64").value_counts().sort_index().items()}
+    issues = manifest["issues"].fillna("").astype(str) if "issues" in manifest.columns else None
+    thin = []
+    if issues is not None:
+        flagged = issues.map(lambda cell: THIN_CODE in codes.parse(cell)).astype(bool)
+        thin = sorted(set(labels[flagged]))
+    summary = {"rows": int(len(manifest)), "assigned": int(assigned.sum()),
+               "left_out": int((~assigned).sum()),
+               "splits": {n: int((split_col == n).sum()) for n in names},
+               "folds": folds, "thin_classes": thin, "missing": missing}
+    if keep_from is not None:
+        _check_manifest(keep_from, "keep_from", ("path", "split"))
+        old, _ = _old_assignment(manifest, keep_from)
+        now = split_col.to_numpy(dtype=object)
+        found = old != ""
+        summary.update(kept=int((found & (now == old)).sum()),
+                       placed=int((~found & (now != "")).sum()),
+                       moved=int((found & (now != "") & (now != old)).sum()),
+                       dropped=int((found & (now == "")).sum()))
+    return summary
+
+
+# ---------------------------------------------------------------- parameters
+
+def _check_manifest(df, name, needed):
+    import pandas as pd
+
+    if not isinstance(df, pd.DataFrame):
+        raise TypeError(f"{name} must be a pandas DataFrame, got {type(df).__name__}")
+    missing = [c for c in needed if c not in df.columns]
+    if missing:
+        raise ParameterError(f"{name} has no {', '.join(map(repr, missing))} column "
+                             f"(columns: {', '.join(map(str, df.columns))})")
+
+
+def _check_ratios(ratios):
+    """Ratios as three shares (train, val, test); two-way ratios get a val share of 0."""
+    if isinstance(ratios, (str, bytes)) or not hasattr(ratios, "__len__"):
+        raise TypeError(f"ratios must be a sequence of numbers, got {type(ratios).__name__}")
+    values = list(ratios)
+    if any(isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating))
+           for v in values):
+        raise TypeError(f"ratios must be numbers, got {values!r}")
+    if len(values) not in (2, 3):
+        raise ParameterError(f"ratios must have 2 (train, test) or 3 (train, val, test) values, "
+                             f"got ratios={values!r}")
+    arr = np.array(values, dtype=float)
+    if not np.isfinite(arr).all() or (arr < 0).any() or arr[0] <= 0:
+        raise ParameterError(f"ratios must be 0 or more and train's above 0, got ratios={values!r}")
+    if abs(arr.sum() - 1.0) > 1e-6:
+        raise ParameterError(f"ratios must sum to 1, got ratios={values!r} (sum {arr.sum():g})")
+    arr = arr / arr.sum()
+    return arr if len(arr) == 3 else np.array([arr[0], 0.0, arr[1]])
+
+
+def _check_seed(seed):
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)):
+        raise TypeError(f"seed must be an int, got {type(seed).__name__}")
+    if seed < 0:
+        raise ParameterError(f"seed must be 0 or more, got seed={seed!r}")
+    return int(seed)
+
+
+def _check_folds(folds):
+    if folds is None:
+        return None
+    if isinstance(folds, bool) or not isinstance(folds, (int, np.integer)):
+        raise TypeError(f"folds must be an int or None, got {type(folds).__name__}")
+    if folds < 2:
+        raise ParameterError(f"folds must be 2 or more, got folds={folds!r}")
+    return int(folds)
+
+
+def _rng(seed, stage):
+    """The one source of randomness: a generator per (seed, stage) so stages do not share draws."""
+    return np.random.default_rng([seed, stage])
+
+
+# ---------------------------------------------------------------- rows and units
+
+def _usable(frame):
+    """Rows without an error code, as a numpy bool array."""
+    if "issues" not in frame.columns:
+        return np.ones(len(frame), dtype=bool)
+    return ~codes.errors_mask(frame["issues"].fillna("").astype(str)).to_numpy()
+
+
+def _fixed_splits(units, old_split, names):
+    """Per unit the index in ``names`` of its kept rows' split, -1 for a unit of new rows only.
+
+    A unit whose kept rows come from several splits follows the first in :data:`_PRECEDENCE`.
+    """
+    import pandas as pd
+
+    precedence = {name: i for i, name in enumerate(_PRECEDENCE)}
+    row_rank = pd.Series(old_split, dtype=object).map(precedence).fillna(-1).to_numpy(dtype=np.int64)
+    fixed = units.fixed_from_rows(row_rank)
+    to_index = np.array([names.index(p) if p in names else -1 for p in _PRECEDENCE])
+    return np.where(fixed >= 0, to_index[np.clip(fixed, 0, None)], -1)
+
+
+def _old_assignment(frame, old):
+    """Each row's split (and fold) in ``old``, matched by sha256, else by path; ``""`` / -1 if new."""
+    import pandas as pd
+
+    n = len(frame)
+    if old is None:
+        return np.full(n, "", dtype=object), np.full(n, -1, dtype=np.int64)
+    prev = old.assign(split=old["split"].fillna("").astype(str), path=old["path"].astype(str))
+    prev = prev[prev["split"].isin(SPLIT_NAMES)]
+    rank = prev["split"].map({name: i for i, name in enumerate(_PRECEDENCE)})
+    prev = prev.assign(_rank=rank).sort_values(["_rank", "path"], kind="stable")
+    fold = (pd.to_numeric(prev["fold"], errors="coerce") if "fold" in prev.columns
+            else pd.Series(np.nan, index=prev.index))
+    prev = prev.assign(_fold=fold.fillna(-1).astype("int64"))
+    split_of = pd.Series("", index=frame.index, dtype=object)
+    fold_of = pd.Series(-1, index=frame.index, dtype="int64")
+    found = pd.Series(False, index=frame.index)
+    keys = [("sha256", lambda s: s != ""), ("path", lambda s: s != "")]
+    for column, wanted in keys:
+        if column not in frame.columns or column not in prev.columns:
+            continue
+        table = prev[wanted(prev[column].fillna("").astype(str))].drop_duplicates(column)
+        table = table.set_index(table[column].astype(str))
+        key = frame[column].fillna("").astype(str)
+        hit = ~found & key.isin(table.index)
+        split_of[hit] = key[hit].map(table["split"])
+        fold_of[hit] = key[hit].map(table["_fold"])
+        found |= hit
+    return split_of.to_numpy(dtype=object), fold_of.to_numpy(dtype=np.int64)
+
+
+def _components(keys, n):
+    """Connected components of rows linked by sharing any key: a unit id per row (0, 1, ...).
+
+    ``keys`` are int arrays (-1 = no key). Minimum-label propagation with pointer jumping; ids
+    are numbered in row order, so they depend on the (path-sorted) rows only.
+    """
+    label = np.arange(n)
+    changed = True
+    while changed:
+        changed = False
+        for key in keys:
+            has = key >= 0
+            if not has.any():
+                continue
+            smallest = np.full(int(key.max()) + 1, n)
+            np.minimum.at(smallest, key[has], label[has])
+            new = np.minimum(label[has], smallest[key[has]])
+            if (new < label[has]).any():
+                changed = True
+                label[has] = new
+        label = label[label]
+    return np.unique(label, return_inverse=True)[1]
+
+
+def _link_keys(rows):
+    """Int codes of the columns that tie rows together: ``bundle``, else ``group`` and ``dup_group``."""
+    import pandas as pd
+
+    columns = ["bundle"] if "bundle" in rows.columns else [c for c in ("group", "dup_group")
+                                                           if c in rows.columns]
+    keys = []
+    for column in columns:
+        values = rows[column]
+        if column == "group":
+            values = values.fillna("").astype(str).replace("", pd.NA)
+        keys.append(pd.factorize(values, use_na_sentinel=True)[0].astype(np.int64))
+    return keys
+
+
+class _Units:
+    """Usable rows grouped into units, with each unit's class counts as sparse entries.
+
+    ``eu``, ``ec``, ``ev``: unit, class and row count of every non-zero (unit, class) pair, sorted
+    by unit then class; ``ptr[u]:ptr[u + 1]`` are unit ``u``'s entries.
+    """
+
+    def __init__(self, row_unit, row_class, n_classes):
+        self.row_unit = row_unit
+        self.row_class = row_class
+        self.n_classes = n_classes
+        self.n_units = int(row_unit.max()) + 1 if len(row_unit) else 0
+        pair, count = np.unique(row_unit * max(n_classes, 1) + row_class, return_counts=True)
+        self.eu = pair // max(n_classes, 1)
+        self.ec = pair % max(n_classes, 1)
+        self.ev = count.astype(np.float64)
+        self.ptr = np.searchsorted(self.eu, np.arange(self.n_units + 1))
+        self.size = np.bincount(self.eu, self.ev, minlength=self.n_units)
+        # main class: most rows in the unit, the lower class index on a tie
+        by_count = np.lexsort((self.ec, -self.ev, self.eu))
+        self.main = self.ec[by_count[self.ptr[:-1]]]
+
+    @classmethod
+    def from_rows(cls, rows):
+        n = len(rows)
+        row_unit = _components(_link_keys(rows), n) if n else np.zeros(0, dtype=np.int64)
+        labels = rows["label"].fillna("").astype(str).to_numpy(dtype=object)
+        classes, row_class = np.unique(labels, return_inverse=True) if n else ([], np.zeros(0, int))
+        return cls(row_unit.astype(np.int64), row_class.astype(np.int64), len(classes))
+
+    def subset(self, keep):
+        """The units where ``keep`` is true, renumbered in order, over the rows they hold."""
+        rows = keep[self.row_unit]
+        new_id = np.cumsum(keep) - 1
+        return _Units(new_id[self.row_unit[rows]], self.row_class[rows], self.n_classes)
+
+    def fixed_from_rows(self, row_rank):
+        """Per unit the split its rows were fixed to (-1 when none): the smallest row rank wins."""
+        big = np.iinfo(np.int64).max
+        fixed = np.full(self.n_units, big, dtype=np.int64)
+        has = row_rank >= 0
+        np.minimum.at(fixed, self.row_unit[has], row_rank[has])
+        return np.where(fixed == big, -1, fixed)
+
+    def entries_of(self, units):
+        """Positions of the entries of ``units`` and, for each, the index into ``units``."""
+        lens = self.ptr[units + 1] - self.ptr[units]
+        local = np.repeat(np.arange(len(units)), lens)
+        starts = np.repeat(self.ptr[units] - np.cumsum(lens) + lens, lens)
+        return starts + np.arange(int(lens.sum())), local
+
+
+# ---------------------------------------------------------------- the optimiser
+
+def _assign(units, ratios, fixed, rng, progress):
+    """A split index per unit, and which classes are too thin to reach every split.
+
+    ``ratios`` holds one target share per split (0 for a split that only keeps fixed units);
+    ``fixed`` the split of each unit that may not move, -1 for a free unit. See the module
+    docstring for the objective and the search.
+    """
+    search = _Search(units, np.asarray(ratios, dtype=float), fixed)
+    free = np.flatnonzero(search.movable)
+    if free.size == 0:
+        return search.assign, search.thin
+    order = free[np.lexsort((rng.permutation(free.size), -units.size[free]))]
+    one_by_one, rest = order[:_GREEDY_UNITS], order[_GREEDY_UNITS:]
+    for u in progress(one_by_one.tolist(), total=len(one_by_one), label="split"):
+        search.place_best(u)
+    if rest.size:
+        search.fill(rest)
+    for _ in range(_MAX_ROUNDS):
+        moved = search.improve_moves()
+        swapped = search.improve_swaps()
+        if not (moved or swapped):
+            break
+    return search.assign, search.thin
+
+
+class _Search:
+    """State of the optimiser: counts per (split, class), the objective and its exact deltas."""
+
+    def __init__(self, units, ratios, fixed):
+        self.u = units
+        self.k = len(ratios)
+        self.active = ratios > 0
+        # units fixed to a split with no target take no part in the targets or the search
+        outside = (fixed >= 0) & ~self.active[np.clip(fixed, 0, None)]
+        taking = ~outside[units.eu]
+        n_c = np.bincount(units.ec[taking], units.ev[taking], minlength=units.n_classes)
+        total = n_c.sum()
+        self.target = np.outer(ratios, n_c)
+        self.size_target = ratios * total
+        with np.errstate(divide="ignore"):
+            self.weight = np.where(self.active, 1.0 / np.maximum(ratios * total, 1e-300) ** 2, 0.0)
+        units_per_class = np.bincount(units.ec[taking], minlength=units.n_classes)
+        reachable = units_per_class >= self.active.sum()
+        self.thin = ~reachable & (units_per_class > 0)
+        # penalty mask over (split, class) cells: only active splits and reachable classes
+        self.penalised = np.outer(self.active, reachable) * _EMPTY_CELL_PENALTY
+        self.x = np.zeros((self.k, units.n_classes))
+        self.s = np.zeros(self.k)
+        self.assign = fixed.copy()
+        self.movable = (fixed < 0) & (units.size > 0)
+        placed = np.flatnonzero(fixed >= 0)
+        self._add(placed, fixed[placed], +1)
+
+    # -- state
+    def _add(self, units, dest, sign):
+        ent, local = self.u.entries_of(units)
+        np.add.at(self.x, (dest[local], self.u.ec[ent]), sign * self.u.ev[ent])
+        self.s += sign * np.bincount(dest, self.u.size[units], minlength=self.k)
+
+    def _move(self, units, dest):
+        self._add(units, self.assign[units], -1)
+        self._add(units, dest, +1)
+        self.assign[units] = dest
+
+    def objective(self):
+        d = self.x - self.target
+        e = self.s - self.size_target
+        spread = self.weight @ ((d * d).sum(axis=1) + e * e)
+        return spread + float((self.penalised * (self.x == 0)).sum())
+
+    # -- construction
+    def place_best(self, unit):
+        """Put one unit where the objective grows least."""
+        lo, hi = self.u.ptr[unit], self.u.ptr[unit + 1]
+        c, v = self.u.ec[lo:hi], self.u.ev[lo:hi]
+        size = self.u.size[unit]
+        d = self.x[:, c] - self.target[:, c]
+        grow = v @ v + 2 * (d @ v) + size * size + 2 * size * (self.s - self.size_target)
+        dest = int(np.argmin(np.where(self.active, self.weight * grow, np.inf)))
+        self.x[dest, c] += v
+        self.s[dest] += size
+        self.assign[unit] = dest
+
+    def fill(self, units):
+        """Place many small units at once: each class's units share what it still lacks per split."""
+        main = self.u.main[units]
+        by_class = np.argsort(main, kind="stable")
+        units, main = units[by_class], main[by_class]
+        size = self.u.size[units]
+        lack = np.clip(self.target - self.x, 0, None) * self.active[:, None]
+        total_lack = lack.sum(axis=0)
+        share = np.where(total_lack > 0, lack / np.where(total_lack > 0, total_lack, 1),
+                         (self.target / np.maximum(self.target.sum(axis=0), 1e-300)))
+        bounds = np.cumsum(share, axis=0)[:-1]
+        class_total = np.bincount(main, size, minlength=self.u.n_classes)
+        class_start = np.concatenate([[0.0], np.cumsum(class_total)[:-1]])
+        middle = np.cumsum(size) - size / 2 - class_start[main]
+        position = middle / class_total[main]
+        dest = (position[None, :] > bounds[:, main]).sum(axis=0)
+        self.assign[units] = dest
+        self._add(units, dest, +1)
+
+    # -- improvement
+    def move_deltas(self, units):
+        """Exact change of the objective for moving each unit alone to each split (inf: no move)."""
+        ent, local = self.u.entries_of(units)
+        c, v = self.u.ec[ent], self.u.ev[ent]
+        src = self.assign[units]
+        a = src[local]
+        d = self.x - self.target
+        size = self.u.size[units]
+        e = self.s - self.size_target
+        leave = self.weight[a] * (v * v - 2 * v * d[a, c]) + self.penalised[a, c] * (self.x[a, c] == v)
+        out = np.bincount(local, leave, minlength=len(units))
+        out += self.weight[src] * (size * size - 2 * size * e[src])
+        deltas = np.empty((len(units), self.k))
+        for b in range(self.k):
+            join = self.weight[b] * (v * v + 2 * v * d[b, c]) - self.penalised[b, c] * (self.x[b, c] == 0)
+            deltas[:, b] = (np.bincount(local, join, minlength=len(units)) + out
+                            + self.weight[b] * (size * size + 2 * size * e[b]))
+        deltas[:, ~self.active] = np.inf
+        deltas[np.arange(len(units)), src] = np.inf
+        return deltas
+
+    def improve_moves(self):
+        """One round of single-unit moves; True when the objective went down."""
+        units = np.flatnonzero(self.movable)
+        if units.size == 0:
+            return False
+        deltas = self.move_deltas(units)
+        dest = deltas.argmin(axis=1)
+        gain = deltas[np.arange(len(units)), dest]
+        good = gain < -_TOL
+        units, dest, gain = units[good], dest[good], gain[good]
+        # one move per (from, to, main class): moves in different cells barely interact
+        cell = (self.assign[units] * self.k + dest) * self.u.n_classes + self.u.main[units]
+        chosen = _best_per_key(cell, gain)
+        return self._apply_batch(units[chosen, None], dest[chosen, None])
+
+    def improve_swaps(self):
+        """One round of pair swaps between every two splits; True when the objective went down."""
+        improved = False
+        for a in range(self.k):
+            for b in range(a + 1, self.k):
+                if self.active[a] and self.active[b]:
+                    improved |= self._swap_pair(a, b)
+        return improved
+
+    def _swap_pair(self, a, b):
+        """Exchange units between ``a`` and ``b``: the best disjoint pairs among the candidates."""
+        in_a, move_ab = self._swap_candidates(a, b)
+        in_b, move_ba = self._swap_candidates(b, a)
+        if in_a.size == 0 or in_b.size == 0:
+            return False
+        # a swap is both moves plus their cross term -2 (w_a + w_b) (v_i . v_j + s_i s_j); the
+        # empty-cell part is taken from the moves alone (the batch is checked against J anyway)
+        overlap = self._class_rows(in_a) @ self._class_rows(in_b).T
+        overlap += np.outer(self.u.size[in_a], self.u.size[in_b])
+        gain = move_ab[:, None] + move_ba[None, :] - 2 * (self.weight[a] + self.weight[b]) * overlap
+        partner = gain.argmin(axis=1)
+        best = gain[np.arange(in_a.size), partner]
+        good = best < -_TOL
+        first, second, best = in_a[good], in_b[partner[good]], best[good]
+        chosen = _best_per_key(second, best)  # each unit of b in one swap at most
+        units = np.stack([first[chosen], second[chosen]], axis=1)
+        dest = np.tile(np.array([b, a]), (len(chosen), 1))
+        return self._apply_batch(units, dest)
+
+    def _swap_candidates(self, source, dest):
+        """The ``_SWAP_CANDIDATES`` movable units of ``source`` that lose least by moving to ``dest``."""
+        units = np.flatnonzero(self.movable & (self.assign == source))
+        if units.size == 0:
+            return units, np.zeros(0)
+        delta = self.move_deltas(units)[:, dest]
+        keep = np.lexsort((units, delta))[:_SWAP_CANDIDATES]
+        keep.sort()
+        return units[keep], delta[keep]
+
+    def _class_rows(self, units):
+        """Dense (units x classes) row counts."""
+        ent, local = self.u.entries_of(units)
+        dense = np.zeros((len(units), self.u.n_classes))
+        dense[local, self.u.ec[ent]] = self.u.ev[ent]
+        return dense
+
+    def _apply_batch(self, units, dest):
+        """Apply changes ``units[i] -> dest[i]`` (rows of unit arrays), best first.
+
+        Keeps the first ``n`` changes when together they lower the objective, halving ``n``
+        until they do; True when something was kept.
+        """
+        before = self.objective()
+        n = len(units)
+        while n:
+            moving, target = units[:n].ravel(), dest[:n].ravel()
+            source = self.assign[moving].copy()
+            self._move(moving, target)
+            if self.objective() < before - _TOL:
+                return True
+            self._move(moving, source)
+            n //= 2
+        return False
+
+
+def _best_per_key(key, gain):
+    """Indices of the lowest ``gain`` per distinct ``key``, ordered by gain (ties: lower index)."""
+    if key.size == 0:
+        return np.zeros(0, dtype=np.int64)
+    order = np.lexsort((np.arange(key.size), gain, key))
+    first = order[np.concatenate([[True], key[order][1:] != key[order][:-1]])]
+    return first[np.lexsort((first, gain[first]))]

@@ -1,0 +1,75 @@
+"""Labels from folders and from label tables; every bad table row is named."""
+
+from __future__ import annotations
+
+import pytest
+
+from labelprep import layout
+from labelprep.errors import InputError, ParameterError
+
+
+class TestDetect:
+    def test_class_folders(self):
+        assert layout.detect(["cat/a.jpg", "dog/b.jpg"]) == "folders"
+
+    def test_split_folders(self):
+        assert layout.detect(["train/cat/a.jpg", "Validation/dog/b.jpg", "test/cat/c.jpg"]) == "split-folders"
+
+    def test_table_wins(self, tmp_path):
+        assert layout.detect(["train/cat/a.jpg"], labels_table=tmp_path / "t.csv") == "table"
+
+
+class TestAssign:
+    def test_class_folders_take_first_folder(self):
+        got = layout.assign(["cat/x/a.jpg", "dog/b.jpg", "loose.jpg"], "folders")
+        assert got["label"] == ["cat", "dog", ""]
+        assert got["given_split"] == ["", "", ""]
+
+    def test_split_folders_keep_the_split(self):
+        got = layout.assign(["train/cat/a.jpg", "valid/dog/b.jpg", "test/cat/c.jpg"], "auto")
+        assert got["label"] == ["cat", "dog", "cat"]
+        assert got["given_split"] == ["train", "val", "test"]
+
+    def test_group_pattern_first_capture(self):
+        got = layout.assign(["cat/s1_a.jpg", "cat/s2_b.jpg", "cat/c.jpg"], "folders", group_pattern=r"/(s\d)_")
+        assert got["group"] == ["s1", "s2", ""]
+
+    def test_bad_pattern_and_layout_are_parameter_errors(self):
+        with pytest.raises(ParameterError, match="not a valid regular expression"):
+            layout.assign(["a/b.jpg"], "folders", group_pattern="(")
+        with pytest.raises(ParameterError, match="layout='sideways'"):
+            layout.assign(["a/b.jpg"], "sideways")
+
+
+class TestTable:
+    def _table(self, tmp_path, text, encoding="utf-8"):
+        path = tmp_path / "labels.csv"
+        path.write_bytes(text.encode(encoding))
+        return path
+
+    def test_reads_labels_and_groups(self, tmp_path):
+        t = self._table(tmp_path, "path,label,group\na.jpg,cat,s1\nsub/b.jpg,dog,\n")
+        got = layout.assign(["a.jpg", "sub/b.jpg", "c.jpg"], "table", labels_table=t)
+        assert got["label"] == ["cat", "dog", ""]
+        assert got["group"] == ["s1", "", ""]
+
+    @pytest.mark.parametrize("text, message", [
+        ("path,label\n../up.jpg,cat\n", "line 2: '../up.jpg' escapes the root"),
+        ("path,label\na/../../up.jpg,cat\n", "line 2: 'a/../../up.jpg' escapes the root"),
+        ("path,label\n/etc/passwd,cat\n", "line 2: '/etc/passwd' is absolute"),
+        ("path,label\na.jpg,cat\na.jpg,dog\n", "line 3: 'a.jpg' is listed twice"),
+        ("path,label\na.jpg,cat\nghost.jpg,dog\n", "line 3: 'ghost.jpg' does not exist"),
+        ("path,label,colour\na.jpg,cat,red\n", "unknown column"),
+        ("file,label\na.jpg,cat\n", "missing column"),
+        ("path,label\na.jpg,cat,extra\n", "line 2: 3 fields"),
+        ("", "is empty"),
+    ])
+    def test_bad_tables_name_the_row(self, tmp_path, text, message):
+        t = self._table(tmp_path, text)
+        with pytest.raises(InputError, match=message.replace("(", r"\(")):
+            layout.assign(["a.jpg"], "table", labels_table=t)
+
+    def test_wrong_encoding_is_named(self, tmp_path):
+        t = self._table(tmp_path, "path,label\na.jpg,gr\u00fcn\n", encoding="latin-1")
+        with pytest.raises(InputError, match="not UTF-8"):
+            layout.assign(["a.jpg"], "table", labels_table=t)
