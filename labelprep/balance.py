@@ -30,8 +30,8 @@ def by_split(manifest, *, split_column="split", beta=DEFAULT_BETA, min_count=DEF
     Rows with an empty label are counted under ``unlabelled`` and left out of the class
     statistics. Rows whose split is ``""`` form the split ``"unassigned"``; *overall* means the
     rows that are in a split (what a trainer sees), so ``unassigned`` is not part of it and has no
-    chi-square. The classes are the labels found in the overall rows (or in all rows when no row
-    is assigned), sorted.
+    chi-square. The classes are every non-empty label of the manifest, sorted, so a class whose
+    files were all left out shows with zero counts (and a warning) rather than vanishing.
 
     Parameters
     ----------
@@ -69,8 +69,9 @@ def by_split(manifest, *, split_column="split", beta=DEFAULT_BETA, min_count=DEF
           ``class_balanced_weights``: proportional to its inverse, summing to k
           (Cui et al., "Class-Balanced Loss Based on Effective Number of Samples", CVPR 2019).
         - ``chi_square``: ``{"statistic", "dof", "p_value"}`` of the counts against the overall
-          shares (Pearson's test, dof = classes - 1); ``None`` for ``unassigned``, for overall,
-          or when it is undefined (no labelled row, fewer than two classes).
+          shares (Pearson's test over the classes present overall, dof = their number - 1);
+          ``None`` for ``unassigned``, for overall, or when it is undefined (no labelled row,
+          fewer than two classes).
 
     Examples
     --------
@@ -106,8 +107,7 @@ def by_split(manifest, *, split_column="split", beta=DEFAULT_BETA, min_count=DEF
         rows_by_split.setdefault(split or UNASSIGNED, []).append(label)
 
     assigned = [lab for split, labs in rows_by_split.items() if split != UNASSIGNED for lab in labs]
-    pool = assigned if assigned else labels
-    classes = sorted({lab for lab in pool if lab})
+    classes = sorted({lab for lab in labels if lab})
 
     overall = _stats(assigned, classes, beta, reference=None)
     names = [s for s in SPLIT_ORDER if s in rows_by_split]
@@ -131,22 +131,20 @@ def by_split(manifest, *, split_column="split", beta=DEFAULT_BETA, min_count=DEF
 def _stats(labels: list[str], classes: list[str], beta: float, *, reference) -> dict:
     """The statistics of one group of rows (see :func:`by_split`)."""
     counts = {c: 0 for c in classes}
-    unlabelled = 0
     for lab in labels:
-        if lab in counts:
+        if lab:
             counts[lab] += 1
-        elif not lab:
-            unlabelled += 1
-    # a label absent from the overall rows (only in unassigned ones) is not one of the classes
     n = sum(counts.values())
     present = {c: k for c, k in counts.items() if k > 0}
     k = len(present)
     chi = None
-    if reference is not None and n and len(classes) > 1:
-        chi = chi_square(list(counts.values()), [n * reference[c] for c in classes])
+    # a class with no file in any split has expected count 0 here and observed 0: it adds nothing
+    tested = [] if reference is None else [c for c in classes if reference[c] > 0]
+    if n and len(tested) > 1:
+        chi = chi_square([counts[c] for c in tested], [n * reference[c] for c in tested])
     return {
         "rows": len(labels),
-        "unlabelled": unlabelled,
+        "unlabelled": len(labels) - n,
         "n": n,
         "counts": counts,
         "shares": {c: (counts[c] / n if n else 0.0) for c in classes},

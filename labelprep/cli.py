@@ -77,6 +77,15 @@ CHECK_OPTIONS = _stack(
     click.option("--min-side", type=click.IntRange(min=1), default=defaults.MIN_SIDE, show_default=True,
                  help="Images whose shorter side is below this many pixels are flagged too-small."),
 )
+# check-only limits; prepare uses their defaults until pipeline.prepare takes them too
+_CHECK_LIMITS = _stack(
+    click.option("--max-aspect", type=click.FloatRange(min=1), default=defaults.MAX_ASPECT,
+                 show_default=True, metavar="RATIO",
+                 help="Long side over short side above this is flagged extreme-aspect."),
+    click.option("--min-spread", type=click.FloatRange(0, 255), default=defaults.MIN_SPREAD,
+                 show_default=True, metavar="LEVELS",
+                 help="Luminance standard deviation (0-255) below this is flagged near-blank."),
+)
 _max_distance = click.option(
     "--max-distance", type=click.IntRange(0, 64), default=defaults.MAX_DISTANCE, show_default=True,
     metavar="BITS", help="Hamming radius on the 64-bit perceptual hash for near-duplicates.")
@@ -143,19 +152,19 @@ def main():
 @_force
 @_quiet
 def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_pixels, force, quiet):
-    """Index every file under ROOT: label, size, format, digests and perceptual hash."""
+    """Index every file under ROOT: label, size, format, digests and perceptual hash.
+
+    A rescan decodes only new and changed files (by size and modification time); an interrupted
+    scan resumes from the journal it keeps beside MANIFEST.
+    """
     from . import manifest
-    from .scanner import scan as run
+    from .scanner import journal_path, previous_manifest, scan as run
 
     manifest.guard_output(output, force=force)
-    previous = None
-    if output.is_file():
-        try:
-            previous = manifest.read(output)
-        except LabelprepError:
-            previous = None
+    journal = journal_path(output)
     m = run(root, layout=layout, labels=labels, group_pattern=group_pattern,
-            include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels, previous=previous,
+            include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
+            previous=previous_manifest(output, root=root, max_pixels=max_pixels), journal=journal,
             progress=_progress(quiet))
     facts = m.attrs.get("scan", {})
     options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
@@ -163,6 +172,7 @@ def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_
     manifest.write(m, output, meta={"root": str(root.resolve()),
                                     "stages": {"scan": {"options": options, "result": facts}}},
                    force=True)
+    journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
                 f"{facts.get('reused', 0)} unchanged), layout {facts.get('layout')} -> {output}")
     if facts.get("skipped_junk"):
@@ -192,17 +202,19 @@ def _gate(m, fail_on: str):
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
 @CHECK_OPTIONS
 @_max_pixels
+@_CHECK_LIMITS
 @_fail_on
 @_quiet
-def check(manifest_path, min_side, max_pixels, fail_on, quiet):
-    """Flag corrupt, truncated, tiny, mislabelled-format and risky files in MANIFEST.
+def check(manifest_path, fail_on, quiet, **limits):
+    """Flag broken, truncated, tiny, misnamed and risky files in MANIFEST.
 
-    The codes are written back into the manifest's issues column; no row is removed.
+    The codes are written back into the manifest's issues column; no row is removed. Per code
+    it prints the count and the first files with a reason; --fail-on sets the exit status.
     """
     from .checks import check as run
 
-    m = run(_read(manifest_path), min_side=min_side, max_pixels=max_pixels)
-    _write_back(m, manifest_path, "check", {"min_side": min_side, "max_pixels": max_pixels})
+    m = run(_read(manifest_path), **limits)
+    _write_back(m, manifest_path, "check", {**m.attrs["check"], "fail_on": fail_on})
     _print_issues(m, quiet)
     _gate(m, fail_on)
 
@@ -326,7 +338,9 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
         raise InputError(f"cannot tell which folder {manifest_path}'s paths are relative to; pass --root")
     written = run(_read(manifest_path), dest, root=root, mode=mode, force=force,
                   strip_metadata=strip_metadata, progress=_progress(quiet))
-    _say(quiet, f"{len(written)} files placed under {dest} ({mode})")
+    methods = written["method"].value_counts()  # a hardlink falls back to a copy across filesystems
+    _say(quiet, f"{len(written)} files placed under {dest}: "
+                + ", ".join(f"{n} {method}" for method, n in methods.items()))
 
 
 @main.command()

@@ -5,3 +5,9 @@ MAX_PIXELS = 89_478_485  # Pillow's documented Image.MAX_IMAGE_PIXELS (decompres
 MAX_DISTANCE = 8  # Hamming radius on 64-bit pHash; see README "Near-duplicates" for how it was chosen
 RATIOS = (0.8, 0.1, 0.1)
 SEED = 0
+# 3:1 sits above every usual camera and screen shape (4:3, 3:2, 16:9, 21:9 = 2.33; from memory),
+# so only strips, banners and panoramas are flagged
+MAX_ASPECT = 3.0
+# luminance std (0-255) on a 64x64 thumbnail: flat frames with sensor noise measure under 1, the
+# lowest photo bundled with scikit-image (microaneurysms.png) 9.8; tests/test_checks.py pins both
+MIN_SPREAD = 2.0

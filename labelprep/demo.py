@@ -150,6 +150,36 @@ def _jpeg_bytes(im, quality=90, **kwargs) -> bytes:
     return buf.getvalue()
 
 
+def _hand_png(width: int, height: int, pixel_data: bytes) -> bytes:
+    """An 8-bit RGB PNG assembled chunk by chunk, so its header can claim any size."""
+    import struct
+
+    from .formats import PNG_SIGNATURE, png_chunk
+
+    header = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)  # PNG spec 11.2.2 IHDR fields
+    return PNG_SIGNATURE + png_chunk(b"IHDR", header) + png_chunk(b"IDAT", pixel_data) + png_chunk(b"IEND", b"")
+
+
+def _plant_odd_pixels(put, rng) -> None:
+    """Files that decode but that a training loader may mishandle; drawn fresh, so no copies."""
+    import numpy as np
+    from PIL import Image
+
+    frames = [_draw("anemone", rng) for _ in range(3)]
+    gif = io.BytesIO()
+    frames[0].save(gif, "GIF", save_all=True, append_images=frames[1:], duration=300)
+    put("anemone/pool-19-0915.gif", gif.getvalue(), "3-frame animated GIF", "multi-frame")
+    put("urchin/pool-20-0916.jpg", _jpeg_bytes(_draw("urchin", rng).convert("CMYK")), "CMYK JPEG",
+        "unusual-mode")
+    deep = io.BytesIO()
+    Image.fromarray(np.asarray(_draw("crab", rng).convert("L"), dtype=np.uint16) * 257).save(deep, "PNG")
+    put("crab/pool-21-0917.png", deep.getvalue(), "16-bit greyscale PNG", "unusual-mode")
+    put("starfish/pool-22-0918.jpg", _jpeg_bytes(Image.new("RGB", SIZE, (150, 130, 95))),
+        "blank frame of one sand colour", "near-blank")
+    put("starfish/pool-23-0919.jpg", _jpeg_bytes(_draw("starfish", rng).resize((640, 120))),
+        "640x120 strip", "extreme-aspect")
+
+
 def _plant(photos: Path, originals: dict, rng) -> list[tuple[str, str, str]]:
     from PIL import Image
 
@@ -169,12 +199,18 @@ def _plant(photos: Path, originals: dict, rng) -> list[tuple[str, str, str]]:
     put("crab/pool-05-0901.jpg", b"", "empty file", "empty-file")
     full = star[1].read_bytes()
     put("starfish/pool-04-0902.jpg", full[: len(full) * 55 // 100], "JPEG cut at 55% of its bytes", "truncated")
-    put("urchin/pool-06-0903.jpg", b"\xff\xd8\xff\xe0" + rng.bytes(3000), "JPEG header, garbage body", "unreadable")
+    put("urchin/pool-06-0903.png", _hand_png(*SIZE, rng.bytes(3000)),
+        "PNG whose pixel data is not a zlib stream", "unreadable")
     tiny = Image.open(anem[2]).resize((24, 18))
     put("anemone/pool-08-0904.jpg", _jpeg_bytes(tiny), "24x18 thumbnail", "too-small")
     png = io.BytesIO()
     Image.open(star[3]).save(png, "PNG")
     put("starfish/pool-09-0905.jpg", png.getvalue(), "PNG saved under a .jpg name", "wrong-extension")
+    flipped = bytearray(png.getvalue())
+    flipped[flipped.find(b"IDAT") + 40] ^= 0xFF
+    put("crab/pool-17-0913.png", bytes(flipped), "PNG with one pixel-data byte flipped (its CRC fails)", "corrupt")
+    put("starfish/pool-18-0914.png", _hand_png(30_000, 30_000, b""),
+        "PNG header claiming 30000x30000 pixels, with no pixels behind it", "pixel-limit")
     gps = Image.Exif()
     gps[0x8825] = {1: "N", 2: (47.0, 36.0, 12.5), 3: "W", 4: (122.0, 19.0, 40.0)}  # invented place
     put("crab/pool-10-0906.jpg", _jpeg_bytes(Image.open(crab[4]), exif=gps), "photo carrying GPS tags",
@@ -194,5 +230,6 @@ def _plant(photos: Path, originals: dict, rng) -> list[tuple[str, str, str]]:
     im = Image.open(urch[10])
     put("crab/pool-16-0912.jpg", _jpeg_bytes(im.resize((288, 216), Image.LANCZOS), quality=80),
         f"resized copy of urchin photo {rel(urch[10])} filed under crab", "label-conflict")
+    _plant_odd_pixels(put, rng)
     put(".DS_Store", b"\x00\x00\x00\x01Bud1", "hidden system file (skipped and counted)", "")
     return planted

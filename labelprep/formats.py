@@ -1,19 +1,22 @@
-"""What the file-format specifications say about a file's bytes: signatures and end markers.
+"""What the file-format specifications say about a file's bytes: signatures and structure.
 
 Detection looks at content, never at the name, so a PNG saved as ``.jpg`` is still a PNG. The
-structural checks are cheap passes over bytes already in memory; they catch files that a decoder
-may accept although the file is incomplete.
+structural checks (:func:`damage`) are cheap passes over bytes already in memory; they catch files
+that a decoder may accept although the file is incomplete or fails its own checksums.
 """
 
 from __future__ import annotations
 
+import re
 import struct
 import zlib
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948) 5.2
 
 # (format, offset, signature); sources named per line
 _SIGNATURES = [
     ("jpeg", 0, b"\xff\xd8\xff"),                 # ITU-T T.81 B.1.1.3: SOI marker FFD8, then a marker
-    ("png", 0, b"\x89PNG\r\n\x1a\n"),             # PNG specification (ISO/IEC 15948) 5.2 signature
+    ("png", 0, PNG_SIGNATURE),                    # PNG specification (ISO/IEC 15948) 5.2 signature
     ("gif", 0, b"GIF87a"),                        # GIF87a specification, header block
     ("gif", 0, b"GIF89a"),                        # GIF89a specification section 17, header block
     ("tiff", 0, b"II*\x00"),                      # TIFF 6.0 section 2: little-endian header, 42
@@ -36,7 +39,8 @@ EXTENSIONS = {
     "avif": (".avif",),
     "heif": (".heic", ".heif"),
 }
-IMAGE_EXTENSIONS = frozenset(e for exts in EXTENSIONS.values() for e in exts)
+FORMAT_OF_EXTENSION = {ext: fmt for fmt, exts in EXTENSIONS.items() for ext in exts}
+IMAGE_EXTENSIONS = frozenset(FORMAT_OF_EXTENSION)
 
 HEAD_BYTES = 32  # enough for every signature above
 
@@ -78,62 +82,113 @@ def sniff(head: bytes) -> str:
 def format_of_extension(name: str) -> str:
     """The format an extension usually names (``"photo.JPG"`` -> ``"jpeg"``); ``""`` when none."""
     dot = name.rfind(".")
-    ext = name[dot:].lower() if dot >= 0 else ""
-    for fmt, exts in EXTENSIONS.items():
-        if ext in exts:
-            return fmt
-    return ""
+    return FORMAT_OF_EXTENSION.get(name[dot:].lower(), "") if dot >= 0 else ""
 
 
-def incomplete(fmt: str, data: bytes) -> str:
-    """Why ``data`` of format ``fmt`` is structurally incomplete, or ``""`` when it looks whole.
+TRUNCATED = "truncated"
+CORRUPT = "corrupt"
 
-    Decoders are lenient about a file's tail: a JPEG cut just before its end marker, or a PNG with
-    its last chunk missing, can decode without complaint. These checks read the specs' rules.
+
+def damage(fmt: str, data: bytes) -> tuple[str, str]:
+    """What the format's rules say is wrong with ``data``: ``(kind, why)``, ``("", "")`` when whole.
+
+    ``kind`` is :data:`TRUNCATED` (the bytes are a valid start that stops early) or
+    :data:`CORRUPT` (the bytes break an integrity rule, such as a chunk checksum). Decoders are
+    lenient about both: a JPEG cut just before its end marker, or a PNG whose pixel data fails its
+    checksum, can decode without complaint. Formats without a check here return ``("", "")``.
+
+    Examples
+    --------
+    >>> damage("gif", b"GIF89a")
+    ('truncated', 'no GIF trailer (0x3B) at the end')
     """
     if fmt == "jpeg":
-        return _jpeg_incomplete(data)
+        return _jpeg_damage(data)
     if fmt == "png":
-        return _png_incomplete(data)
+        return _png_damage(data)
     if fmt == "gif":
-        # GIF89a section 27: the trailer 0x3B ends the data stream
-        return "" if data.rstrip(b"\x00").endswith(b"\x3b") else "no GIF trailer (0x3B) at the end"
+        # GIF89a section 27: the trailer 0x3B ends the data stream (some writers pad with zeros)
+        if data.rstrip(b"\x00").endswith(b"\x3b"):
+            return "", ""
+        return TRUNCATED, "no GIF trailer (0x3B) at the end"
     if fmt == "webp":
         # RFC 9649 2.5: the RIFF size counts the bytes after the first 8
         if len(data) < 12:
-            return "shorter than a RIFF header"
+            return TRUNCATED, "shorter than a RIFF header"
         declared = struct.unpack("<I", data[4:8])[0] + 8
-        return "" if len(data) >= declared else f"RIFF header declares {declared} bytes, file has {len(data)}"
-    return ""
+        if len(data) < declared:
+            return TRUNCATED, f"RIFF header declares {declared} bytes, file has {len(data)}"
+    return "", ""
 
 
-def _jpeg_incomplete(data: bytes) -> str:
-    # ITU-T T.81 B.2.1: the image ends with EOI (FFD9) after its last scan (SOS, FFDA). Byte
-    # stuffing (B.1.1.5) keeps FFD9 out of entropy-coded data, so an EOI after the last SOS is the
-    # real end; an EOI inside an earlier embedded thumbnail does not count.
-    last_sos = data.rfind(b"\xff\xda")
-    if last_sos < 0:
-        return "no start-of-scan marker (FFDA)"
-    if data.find(b"\xff\xd9", last_sos + 2) < 0:
-        return "no end-of-image marker (FFD9) after the last scan"
-    return ""
+# ITU-T T.81 B.1.1.5: inside entropy-coded data FF is followed by 00 (stuffing) or RSTn
+# (D0-D7); FF then any other byte is the next marker. Extra FF bytes are fill (B.1.1.2).
+_JPEG_NEXT_MARKER = re.compile(rb"\xff[^\x00\xd0-\xd7\xff]")
+_JPEG_STANDALONE = frozenset({0x01, 0xD8, *range(0xD0, 0xD8)})  # T.81 B.1.1.3: TEM, SOI, RSTn have no length
+_SOS, _EOI = 0xDA, 0xD9
 
 
-def _png_incomplete(data: bytes) -> str:
-    # PNG specification 5.3: each chunk is length, type, data, CRC-32 over type and data;
-    # 5.6: IEND is the last chunk
-    pos = 8
-    end = len(data)
+def _jpeg_damage(data: bytes) -> tuple[str, str]:
+    # T.81 B.2: SOI, then marker segments (FFxx and a 2-byte length that counts itself); each
+    # SOS segment is followed by entropy-coded data; EOI (FFD9) ends the image. Walking segment
+    # by segment skips embedded thumbnails (inside APP1), whose own EOI must not count.
+    # Stray bytes between segments are skipped to the next marker, as libjpeg does, since
+    # decoders still read such files.
+    pos, end = 2, len(data)
+    while True:
+        found = _JPEG_NEXT_MARKER.search(data, pos)
+        if found is None:
+            return TRUNCATED, "no end-of-image marker (FFD9): the data stops early"
+        pos = found.start()
+        code = data[pos + 1]
+        if code == _EOI:
+            return "", ""
+        if code in _JPEG_STANDALONE:
+            pos += 2
+            continue
+        if pos + 4 > end:
+            return TRUNCATED, f"marker FF{code:02X} at byte {pos} is cut off"
+        length = (data[pos + 2] << 8) | data[pos + 3]
+        if length < 2:
+            return CORRUPT, f"marker segment FF{code:02X} at byte {pos} declares length {length} (T.81 needs >= 2)"
+        stop = pos + 2 + length
+        if stop > end:
+            return TRUNCATED, f"marker segment FF{code:02X} at byte {pos} runs past the end of the file"
+        pos = stop
+
+
+def png_chunk(ctype: bytes, payload: bytes) -> bytes:
+    """One PNG chunk laid out as PNG specification 5.3 says: length, type, data, CRC-32.
+
+    Used to build test and demo files by hand, e.g. a header that claims a huge size.
+
+    Examples
+    --------
+    >>> png_chunk(b"IEND", b"").hex()
+    '0000000049454e44ae426082'
+    """
+    return struct.pack(">I", len(payload)) + ctype + payload + struct.pack(">I", zlib.crc32(ctype + payload))
+
+
+def _png_damage(data: bytes) -> tuple[str, str]:
+    # PNG specification (ISO/IEC 15948) 5.3: a chunk is a 4-byte length (at most 2^31-1), a
+    # 4-byte type, the data and a CRC-32 over type and data; 5.6: IHDR comes first, IEND last.
+    pos, end = 8, len(data)
     while pos + 12 <= end:
         length = struct.unpack(">I", data[pos:pos + 4])[0]
         ctype = data[pos + 4:pos + 8]
+        name = ctype.decode("latin-1")
+        if length > 0x7FFFFFFF:
+            return CORRUPT, f"chunk {name!r} at byte {pos} declares length {length}, over 2^31-1"
+        if pos == 8 and ctype != b"IHDR":
+            return CORRUPT, f"first chunk is {name!r}, the PNG specification requires IHDR"
         stop = pos + 8 + length
         if stop + 4 > end:
-            return f"chunk {ctype.decode('latin-1')!r} runs past the end of the file"
+            return TRUNCATED, f"chunk {name!r} at byte {pos} runs past the end of the file"
         crc = struct.unpack(">I", data[stop:stop + 4])[0]
         if zlib.crc32(data[pos + 4:stop]) != crc:
-            return f"CRC mismatch in chunk {ctype.decode('latin-1')!r}"
+            return CORRUPT, f"CRC mismatch in chunk {name!r} at byte {pos}"
         if ctype == b"IEND":
-            return ""
+            return "", ""
         pos = stop + 4
-    return "no IEND chunk"
+    return TRUNCATED, "no IEND chunk: the data stops early"

@@ -55,7 +55,7 @@ _COLUMN_LIST = [
     Column("has_alpha", "boolean", "scan", "the image has an alpha channel or a transparent palette entry"),
     Column("has_gps", "boolean", "scan", "the EXIF data holds GPS location tags"),
     Column("spread", "Float64", "scan", "standard deviation of luminance (0-255) on the hash thumbnail; near 0 for a blank image"),
-    Column("fault", "str", "scan", "why the file could not be fully decoded: empty, not-image, unreadable, truncated, pixel-limit, timeout"),
+    Column("fault", "str", "scan", "why the file could not be fully decoded: empty, not-image, unreadable, truncated, corrupt, pixel-limit, symlink, timeout"),
     Column("fault_detail", "str", "scan", "one line from the decoder explaining the fault"),
     # grouping
     Column("bundle", "Int64", "group", "id of the rows that must share one split: near-duplicate clusters joined with user groups"),
@@ -91,7 +91,8 @@ def coerce(df):
         if col is None:
             continue
         if col.dtype == "str":
-            out[name] = out[name].astype(object).where(out[name].notna(), "").map(str).astype(object)
+            values = ["" if v is None or v is pd.NA or v != v else str(v) for v in out[name].tolist()]
+            out[name] = pd.Series(values, index=out.index, dtype=object)
         elif col.dtype == "boolean":
             s = out[name]
             if s.dtype == object:

@@ -26,16 +26,17 @@ from .errors import ParameterError
 
 METHODS = ("auto", "brute", "index")
 
-# Below this many hashes "auto" compares every pair: measured by benchmarks/dup_scale.py, the
-# blocked comparison beats the index up to roughly this size at radius 8-12.
-_BRUTE_MAX_N = 12_000
 # Elements of one block's distance matrix; bounds the brute method's memory (~8 bytes each).
 _BLOCK_ELEMENTS = 1 << 22
 # Widest chunk the index builds a dense bucket table for (2**24 int64 offsets = 128 MiB).
 _MAX_CHUNK_BITS = 24
-# Relative cost of one table probe against verifying one candidate pair; fitted by eye on
-# benchmarks/dup_scale.py timings, only used to choose the chunking.
-_PROBE_COST = 3.0
+# Costs relative to verifying one index candidate (about 40 ns), measured on 1e6 random hashes:
+# one table probe about 14 ns, one brute-force pair about 5.5 ns, one bucket-table slot built
+# about 5 ns. They only steer the choice of
+# method and chunking ("auto"); every choice returns the same pairs.
+_PROBE_COST = 0.35
+_BRUTE_PAIR_COST = 0.14
+_TABLE_COST = 0.12
 
 
 def radius_pairs(hashes, radius, *, method="auto"):
@@ -72,10 +73,9 @@ def radius_pairs(hashes, radius, *, method="auto"):
         raise ParameterError(f"radius must be between 0 and 64, got radius={radius}")
     if method not in METHODS:
         raise ParameterError(f"method must be one of {', '.join(METHODS)}, got method={method!r}")
-    if method == "auto":
-        method = "brute" if len(hashes) <= _BRUTE_MAX_N else "index"
-    plan = _plan_chunks(len(hashes), radius) if method == "index" else None
-    if plan is None:
+    n = len(hashes)
+    plan, cost = _plan_chunks(n, radius)
+    if method == "brute" or (method == "auto" and _BRUTE_PAIR_COST * n * n / 2 <= cost):
         i, j = _brute_pairs(hashes, radius)
     else:
         i, j = _index_pairs(hashes, plan)
@@ -125,14 +125,16 @@ def _brute_pairs(hashes, radius):
 
 
 def _plan_chunks(n, radius):
-    """Choose chunk widths and radii for the index, or None when brute force is cheaper.
+    """Chunk widths and radii for the index with the lowest estimated cost, and that cost.
 
-    For ``m`` chunks, ``radius + 1`` is shared out as ``r_c + 1`` per chunk (wider chunks first);
-    the estimated cost counts one probe per pattern per hash and, for hashes spread uniformly,
-    ``n²/2 * patterns / 2**width`` candidate pairs per chunk.
+    For ``m`` chunks, ``radius + 1`` is shared out as ``r_c + 1`` per chunk (wider chunks first).
+    For hashes spread uniformly a chunk costs its table, one probe per hash per pattern (half the
+    patterns, since each pair is probed from one side) and ``n²/2 * patterns / 2**width``
+    candidates.
     """
-    best, best_cost = None, n * (n - 1) / 2  # brute force cost: every pair verified once
-    for m in range(1, min(radius + 1, 64) + 1):
+    best, best_cost = None, float("inf")
+    # more chunks than radius + 1 leave some unused (radius -1), which only helps when radius is tiny
+    for m in range(1, max(radius + 1, 3) + 1):
         widths = [64 // m + (1 if c < 64 % m else 0) for c in range(m)]
         if widths[0] > _MAX_CHUNK_BITS:
             continue
@@ -140,41 +142,55 @@ def _plan_chunks(n, radius):
         cost = 0.0
         for width, r in zip(widths, radii):
             patterns = sum(comb(width, k) for k in range(r + 1))
-            cost += _PROBE_COST * n * patterns + n * n / 2 * patterns / 2.0**width
+            cost += (_TABLE_COST * 2.0**width + _PROBE_COST * n * patterns / 2
+                     + n * n / 2 * patterns / 2.0**width)
         if cost < best_cost:
             best, best_cost = (widths, radii, radius), cost
-    return best
+    return best, best_cost
 
 
 def _index_pairs(hashes, plan):
     """Multi-index hashing: probe each chunk's bucket table, verify, keep each pair once."""
     widths, radii, radius = plan
-    n = len(hashes)
-    shifts = np.cumsum([0] + widths[:-1])
-    masks = [np.uint64((1 << w) - 1) << np.uint64(s) for w, s in zip(widths, shifts)]
+    shifts = np.cumsum([0] + widths[:-1]).tolist()
+    masks = [np.uint64(((1 << w) - 1) << s) for w, s in zip(widths, shifts)]
     found_i, found_j = [], []
     for c, (width, r, shift) in enumerate(zip(widths, radii, shifts)):
-        keys = ((hashes >> np.uint64(shift)) & np.uint64((1 << width) - 1)).astype(np.int64)
+        if r < 0:
+            continue  # the other chunks' radii already cover the pigeonhole bound
+        # items sorted by chunk value: bucket members are contiguous and probes stay local
+        keys = ((hashes >> np.uint64(shift)) & np.uint64((1 << width) - 1)).astype(np.int32)
         order = np.argsort(keys, kind="stable")
-        starts = np.zeros((1 << width) + 1, dtype=np.int64)
-        np.cumsum(np.bincount(keys, minlength=1 << width), out=starts[1:])
-        for pattern in _patterns(width, r):
-            probe = keys ^ pattern
-            lo, hi = starts[probe], starts[probe + 1]
-            count = hi - lo
-            q = np.flatnonzero(count)
-            if not len(q):
-                continue
-            cand_i, cand_j = _expand(q, lo[q], count[q], order)
-            keep = cand_i < cand_j
-            cand_i, cand_j = cand_i[keep], cand_j[keep]
-            xor = hashes[cand_i] ^ hashes[cand_j]
+        sorted_keys, sorted_hashes = keys[order], hashes[order]
+        counts = np.bincount(keys, minlength=1 << width).astype(np.int64)
+        # one gather per probe: bucket start in the high 32 bits, size in the low 32
+        table = ((np.cumsum(counts) - counts) << 32) | counts
+
+        def verify(pos_i, pos_j):
+            xor = sorted_hashes[pos_i] ^ sorted_hashes[pos_j]
             keep = np.bitwise_count(xor) <= radius
             # report a pair only from the first chunk whose radius it meets, so no pair twice
-            for earlier in range(c):
-                keep &= np.bitwise_count(xor & masks[earlier]) > radii[earlier]
-            found_i.append(cand_i[keep])
-            found_j.append(cand_j[keep])
+            for e in range(c):
+                if radii[e] >= 0:
+                    keep &= np.bitwise_count(xor & masks[e]) > radii[e]
+            a, b = order[pos_i[keep]], order[pos_j[keep]]
+            found_i.append(np.minimum(a, b))
+            found_j.append(np.maximum(a, b))
+
+        # pattern 0: pairs inside one bucket, each taken once (later position only)
+        pos = np.arange(len(keys))
+        ends = (table[sorted_keys] >> 32) + (table[sorted_keys] & 0xFFFFFFFF)
+        verify(*_expand(pos, pos + 1, ends - pos - 1))
+        for high in range(width if r > 0 else 0):
+            # a pattern whose top bit is `high` pairs a key without that bit to one with it;
+            # probing only from the keys without it finds each pair once
+            query = np.flatnonzero(((sorted_keys >> high) & 1) == 0)
+            query_keys = sorted_keys[query]
+            for low in _patterns(high, r - 1):
+                entry = table[query_keys ^ ((1 << high) | low)]
+                hit = np.flatnonzero(entry & 0xFFFFFFFF)
+                if len(hit):
+                    verify(*_expand(query[hit], entry[hit] >> 32, entry[hit] & 0xFFFFFFFF))
     return _concat(found_i), _concat(found_j)
 
 
@@ -185,14 +201,14 @@ def _patterns(width, r):
             yield sum(1 << b for b in bits)
 
 
-def _expand(queries, lo, count, order):
-    """Pairs (query, member) for every query and every member of its bucket range."""
+def _expand(queries, lo, count):
+    """Pairs (query, lo + k) for every query and every ``k < count`` of that query."""
+    count = count.astype(np.int64)
     total = int(count.sum())
     cand_i = np.repeat(queries, count)
-    # position inside each run: global offset minus the offset where the run began
-    run_start = np.repeat(np.cumsum(count) - count, count)
-    cand_j = order[np.repeat(lo, count) + np.arange(total) - run_start]
-    return cand_i.astype(np.int64), cand_j.astype(np.int64)
+    # run r covers lo[r], lo[r]+1, ...: subtract where run r starts in the flat output
+    cand_j = np.repeat(lo - (np.cumsum(count) - count), count) + np.arange(total)
+    return cand_i, cand_j
 
 
 def _concat(parts):

@@ -18,6 +18,8 @@ HASH_SIDE = 256          # the hashes work on at most this many pixels per side 
 DEFAULT_MAX_PIXELS = defaults.MAX_PIXELS
 
 _GPS_IFD = 0x8825        # EXIF 2.3 (CIPA DC-008) tag of the GPS Info IFD pointer
+# EXIF 2.3 table 15: GPSLatitude, GPSLongitude; a GPS IFD holding only its version has no position
+_POSITION_TAGS = frozenset({0x0002, 0x0004})
 _ORIENTATION = 0x0112    # TIFF 6.0 / EXIF Orientation tag
 _ALPHA_MODES = frozenset({"RGBA", "LA", "PA", "RGBa", "La"})
 
@@ -47,7 +49,7 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> dict:
         orientation), ``mode``, ``frames``, ``has_alpha``, ``has_gps``, ``spread``, ``fault``,
         ``fault_detail`` and the hash columns of :func:`labelprep.hashing.fingerprint`.
         ``fault`` is one of ``""``, ``"empty"``, ``"unreadable"``, ``"not-image"``,
-        ``"truncated"``, ``"pixel-limit"``.
+        ``"truncated"``, ``"corrupt"``, ``"pixel-limit"``.
 
     Examples
     --------
@@ -83,7 +85,8 @@ def _probe_into(facts: dict, path: str, max_pixels: int) -> None:
     fmt = formats.sniff(data[:formats.HEAD_BYTES])
     facts["format"] = fmt
     if not fmt:
-        facts["fault"], facts["fault_detail"] = "not-image", "content matches no image signature"
+        facts["fault"] = "not-image"
+        facts["fault_detail"] = f"first bytes {data[:8].hex(' ')} match no image signature"
         return
     _decode_into(facts, data, fmt, max_pixels)
 
@@ -103,23 +106,31 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
             facts["fault"], facts["fault_detail"] = "pixel-limit", _one_line(exc)
             return
         except Exception as exc:
-            facts["fault"], facts["fault_detail"] = "unreadable", _one_line(exc)
+            # a header cut short or failing its checksum is the better explanation when there is one
+            kind, why = formats.damage(fmt, data)
+            facts["fault"], facts["fault_detail"] = (kind, why) if kind else ("unreadable", _one_line(exc))
             return
         with im:
+            # header facts first: the budget and the structure are judged before anything that
+            # may decode (Pillow's getexif() loads a whole PNG to find a trailing eXIf chunk)
             width, height = im.size
-            exif = im.getexif()
-            orientation = exif.get(_ORIENTATION, 1)
-            if orientation in (5, 6, 7, 8):  # these EXIF orientations swap the axes
-                width, height = height, width
             facts["width"], facts["height"] = width, height
             facts["mode"] = im.mode
-            facts["frames"] = getattr(im, "n_frames", 1)
             facts["has_alpha"] = im.mode in _ALPHA_MODES or "transparency" in im.info
-            facts["has_gps"] = bool(exif.get_ifd(_GPS_IFD))
             if width * height > max_pixels:
                 facts["fault"] = "pixel-limit"
                 facts["fault_detail"] = f"{width}x{height} = {width * height:,} pixels, budget {max_pixels:,}"
                 return
+            kind, why = formats.damage(fmt, data)
+            if kind:  # no time spent decoding pixels that are not all there
+                facts["fault"], facts["fault_detail"] = kind, why
+                return
+            exif = im.getexif()
+            orientation = exif.get(_ORIENTATION, 1)
+            if orientation in (5, 6, 7, 8):  # these EXIF orientations swap the axes
+                facts["width"], facts["height"] = height, width
+            facts["frames"] = getattr(im, "n_frames", 1)
+            facts["has_gps"] = bool(_POSITION_TAGS & exif.get_ifd(_GPS_IFD).keys())
             if fmt == "jpeg":
                 im.draft(im.mode, (HASH_SIDE, HASH_SIDE))
             try:
@@ -129,31 +140,46 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
                 facts["fault"] = "truncated" if "truncated" in detail else "unreadable"
                 facts["fault_detail"] = detail
                 return
-            missing = formats.incomplete(fmt, data)
-            if missing:
-                facts["fault"], facts["fault_detail"] = "truncated", missing
-                return
             small = _reduce(im)
             small = ImageOps.exif_transpose(small) if orientation != 1 else small
             facts["spread"] = _spread(small)
             facts.update(fingerprint(small))
 
 
+# modes whose samples are not intensities (palette indices) or that reduce() refuses, and the
+# mode they are reduced in instead (averaging palette indices would give noise)
+_REDUCE_AS = {"P": "RGB", "PA": "RGBA", "1": "L", "I;16": "I", "I;16L": "I", "I;16B": "I", "I;16N": "I"}
+
+
 def _reduce(im):
-    """A copy of ``im`` whose shorter side is about HASH_SIDE..2*HASH_SIDE (box filter, cheap)."""
+    """``im`` box-reduced so that its shorter side is in [HASH_SIDE, 2*HASH_SIDE); small ones as they are.
+
+    JPEGs arrive here already reduced by draft mode; other formats are decoded in full, and a
+    reduction by an integer factor (box filter) is the cheapest way to make the hash and spread
+    work independent of the image size.
+    """
     factor = min(im.size) // HASH_SIDE
-    if factor >= 2:
-        try:
-            return im.reduce(factor)
-        except ValueError:  # modes reduce() does not support (e.g. P, 1)
-            pass
-    return im.copy()
+    if factor < 2:
+        return im
+    mode = _REDUCE_AS.get(im.mode)
+    if mode == "RGB" and "transparency" in im.info:
+        mode = "RGBA"
+    try:
+        return (im.convert(mode) if mode else im).reduce(factor)
+    except ValueError:  # a mode reduce() does not know: the hash code resizes it itself
+        return im
 
 
 def _spread(im) -> float:
     """Luminance standard deviation on a 64-pixel thumbnail: close to 0 for a blank image."""
     import numpy as np
 
+    if im.mode.startswith("I") or im.mode == "F":
+        # Pillow clips 16-bit, int and float samples to 0..255 on conversion to L, which would
+        # make them look blank; stretch the image's own range to 0..255 instead
+        values = np.asarray(im.convert("F").resize((64, 64)), dtype=np.float64)
+        span = values.max() - values.min()
+        return round(float(values.std() * 255 / span), 4) if span > 0 else 0.0
     gray = im.convert("RGBA").convert("L") if im.mode in ("P", "PA") else im.convert("L")
     gray = gray.resize((64, 64))
     return round(float(np.asarray(gray, dtype=np.float64).std()), 4)

@@ -9,6 +9,10 @@ from __future__ import annotations
 import sys
 import time
 
+# redraw at most this often: a faster bar costs more than it tells
+_REDRAW_SECONDS = 0.2
+_BAR_WIDTH = 24
+
 
 def silent(iterable, *, total=None, label=""):
     """The default: no output."""
@@ -21,9 +25,28 @@ def resolve(progress):
 
 
 def terminal(*, quiet: bool = False, stream=None):
-    """A progress callable drawing a bar with files per second and time left on ``stream``.
+    """A progress callable drawing a bar with items per second and time left on ``stream``.
 
     Silent when ``quiet`` or when the stream is not a terminal (logs and pipes stay clean).
+
+    Parameters
+    ----------
+    quiet : bool
+        Draw nothing.
+    stream : file-like, optional
+        Where to draw (default: standard error).
+
+    Returns
+    -------
+    callable
+        ``progress(iterable, total=None, label="")`` yielding the items of ``iterable``.
+
+    Examples
+    --------
+    >>> import io
+    >>> bar = terminal(stream=io.StringIO())   # not a terminal: silent
+    >>> list(bar(range(3), total=3, label="scan"))
+    [0, 1, 2]
     """
     stream = sys.stderr if stream is None else stream
     if quiet or not getattr(stream, "isatty", lambda: False)():
@@ -36,33 +59,45 @@ def terminal(*, quiet: bool = False, stream=None):
 
 
 def _bar(iterable, total, label, stream):
-    start = time.monotonic()
-    last = 0.0
+    start = last = now = time.monotonic()
     done = 0
-    for item in iterable:
-        yield item
-        done += 1
-        now = time.monotonic()
-        if now - last >= 0.2 or (total is not None and done == total):
-            last = now
-            stream.write("\r" + _line(label, done, total, now - start))
+    try:
+        for item in iterable:
+            done += 1  # counted when handed out, so an interrupted loop reports what it received
+            yield item
+            now = time.monotonic()
+            if now - last >= _REDRAW_SECONDS:
+                last = now
+                stream.write("\r" + line(label, done, total, now - start))
+                stream.flush()
+    finally:
+        # also when the loop is interrupted: leave the last state on its own line
+        if done:
+            stream.write("\r" + line(label, done, total, now - start) + "\n")
             stream.flush()
-    if done:
-        stream.write("\r" + _line(label, done, total, time.monotonic() - start) + "\n")
-        stream.flush()
 
 
-def _line(label, done, total, elapsed) -> str:
+def line(label: str, done: int, total, elapsed: float) -> str:
+    """One state of the bar: items done, the rate per second, and the estimated time left.
+
+    The estimate assumes the rest goes at the average rate so far.
+
+    Examples
+    --------
+    >>> line("scan", 50, 200, 10.0)
+    'scan       [######..................] 50/200     5.0/s  ETA 0:00:30 '
+    >>> line("walk", 50, None, 10.0)
+    'walk       50     5.0/s '
+    """
     rate = done / elapsed if elapsed > 0 else 0.0
     if total:
-        width = 24
-        filled = int(width * done / total)
-        left = (total - done) / rate if rate > 0 else 0.0
-        return (f"{label:<10} [{'#' * filled}{'.' * (width - filled)}] {done}/{total} "
-                f"{rate:7.1f}/s  {_clock(left)} left ")
+        filled = min(_BAR_WIDTH, int(_BAR_WIDTH * done / total))
+        eta = _clock((total - done) / rate) if rate > 0 else "-:--:--"
+        return (f"{label:<10} [{'#' * filled}{'.' * (_BAR_WIDTH - filled)}] {done}/{total} "
+                f"{rate:7.1f}/s  ETA {eta} ")
     return f"{label:<10} {done} {rate:7.1f}/s "
 
 
 def _clock(seconds: float) -> str:
-    seconds = int(seconds)
+    seconds = int(round(seconds))
     return f"{seconds // 3600:d}:{seconds // 60 % 60:02d}:{seconds % 60:02d}"

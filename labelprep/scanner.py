@@ -2,16 +2,25 @@
 
 The walk is sorted and never follows symbolic links; junk (hidden names and a few system files,
 see :data:`JUNK_NAMES`) is skipped and counted, never dropped silently.
+
+Rescans are incremental. A file whose path, size and modification time match a row of an earlier
+manifest (``previous``) or of the scan journal is not decoded again. The journal is an append-only
+file of JSON lines beside the manifest, one per probed file, flushed to disk in batches while the
+scan runs: when a scan is killed, the next one resumes from what the journal holds. A line torn by
+the crash fails to parse and is ignored. The caller deletes the journal once the manifest is
+safely written (the manifest is then the cache).
 """
 
 from __future__ import annotations
 
 import functools
+import json
 import os
+import time
 from pathlib import Path
 
 from . import layout as layout_mod
-from .errors import InputError
+from .errors import InputError, ParameterError
 from .parallel import map_ordered
 from .probe import DEFAULT_MAX_PIXELS, blank_facts, probe
 from .progress import resolve
@@ -19,12 +28,33 @@ from .progress import resolve
 # names skipped unless include_hidden: anything starting with "." plus these system files/folders
 JUNK_NAMES = frozenset({"Thumbs.db", "desktop.ini", "__MACOSX", "$RECYCLE.BIN", "System Volume Information"})
 # facts a rescan may reuse from an earlier manifest when path, size and mtime are unchanged
-_REUSED = tuple(blank_facts())
+FACTS = tuple(blank_facts())
+JOURNAL_SUFFIX = ".scan-journal"
+_JOURNAL_TAG = "labelprep-scan-journal/1"
+# journal lines are written to disk every this many rows or seconds, whichever comes first: a
+# crash loses at most that much work, and the cost of fsync stays far below that of decoding
+_FLUSH_ROWS = 256
+_FLUSH_SECONDS = 2.0
+# probed rows are turned into a DataFrame piece this many at a time, so that a million-file scan
+# holds compact columns rather than a million dicts
+_PIECE_ROWS = 4096
 
 
 def is_junk(name: str) -> bool:
     """True for a hidden or system file name the scanner skips by default."""
     return name.startswith(".") or name in JUNK_NAMES
+
+
+def journal_path(manifest_path) -> Path:
+    """Where the scan journal of ``manifest_path`` lives: beside it, same name plus a suffix.
+
+    Examples
+    --------
+    >>> journal_path("out/manifest.csv").name
+    'manifest.csv.scan-journal'
+    """
+    manifest_path = Path(manifest_path)
+    return manifest_path.with_name(manifest_path.name + JOURNAL_SUFFIX)
 
 
 def walk(root, *, include_hidden: bool = False):
@@ -62,7 +92,7 @@ def walk(root, *, include_hidden: bool = False):
 
 def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
          include_hidden: bool = False, jobs=None, max_pixels: int = DEFAULT_MAX_PIXELS,
-         previous=None, progress=None):
+         previous=None, journal=None, progress=None):
     """Index every file below ``root`` into a new manifest.
 
     Parameters
@@ -78,14 +108,19 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
     include_hidden : bool
         Index hidden and system files too.
     jobs : int, optional
-        Worker processes (None: every core).
+        Worker processes (None or 0: every core).
     max_pixels : int
         Pixel budget per image; larger images are not decoded.
     previous : DataFrame, optional
-        An earlier manifest of the same root: rows whose path, size and mtime are unchanged are
-        reused instead of probed again.
+        An earlier manifest of the same root made with the same ``max_pixels`` (see
+        :func:`previous_manifest`): rows whose path, size and mtime are unchanged are reused
+        instead of probed again. Rows lacking any fact column are probed again.
+    journal : path-like, optional
+        Scan journal file (see :func:`journal_path`): rows it holds from an interrupted scan of the
+        same root and options are reused like ``previous`` rows, and every file probed now is
+        appended to it. The caller removes it once the manifest is written.
     progress : callable, optional
-        See :mod:`labelprep.progress`.
+        See :mod:`labelprep.progress`; called once, around the files that are decoded.
 
     Returns
     -------
@@ -105,35 +140,40 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
     root_path = Path(root)
     if not root_path.is_dir():
         raise InputError(f"{root} is not a folder")
-    if not isinstance(max_pixels, int) or max_pixels <= 0:
-        raise layout_mod.ParameterError(f"max_pixels must be a positive int; got max_pixels={max_pixels!r}")
+    if not isinstance(max_pixels, int) or isinstance(max_pixels, bool) or max_pixels <= 0:
+        raise ParameterError(f"max_pixels must be a positive int; got max_pixels={max_pixels!r}")
     files, links, skipped = walk(root_path, include_hidden=include_hidden)
     chosen = layout if layout != "auto" else layout_mod.detect(files, labels_table=labels)
     assigned = layout_mod.assign(files + links, chosen, root=root_path, labels_table=labels,
                                  group_pattern=group_pattern)
 
-    reusable = _reusable_rows(previous)
-    facts: list = [None] * len(files)
-    todo = []
-    for i, rel in enumerate(files):
-        old = reusable.get(rel)
-        if old is not None and _unchanged(root_path / rel, old):
-            facts[i] = old
-        else:
-            todo.append(i)
-    work = functools.partial(probe, max_pixels=max_pixels)
-    results = map_ordered(work, (os.path.join(root_path, files[i]) for i in todo), jobs=jobs)
-    for i, result in zip(todo, resolve(progress)(results, total=len(todo), label="scan")):
-        facts[i] = result
-    for rel in links:
-        facts.append({**blank_facts(), "fault": "symlink",
-                      "fault_detail": f"symbolic link to {_readlink(root_path / rel)}; not followed"})
+    header = {"journal": _JOURNAL_TAG, "root": str(root_path.resolve()), "max_pixels": max_pixels,
+              "version": _version(), "facts": list(FACTS)}
+    logged = _read_journal(journal, header) if journal is not None else []
+    known = _known_facts(previous, logged)
+    reused, todo = _split_unchanged(root_path, files, known)
 
-    df = pd.DataFrame(facts, columns=list(_REUSED))
-    # object columns: names that are not UTF-8 arrive surrogate-escaped, which Arrow strings refuse
-    df.insert(0, "path", pd.Series(files + links, dtype=object))
+    pieces = [reused]
+    work = functools.partial(probe, max_pixels=max_pixels)
+    results = map_ordered(work, (os.path.join(root_path, rel) for rel in todo), jobs=jobs)
+    with _JournalWriter(journal, header, fresh=not logged) as log:
+        batch = []
+        for rel, facts in zip(todo, resolve(progress)(results, total=len(todo), label="scan files")):
+            row = {"path": rel, **facts}
+            log.append(row)
+            batch.append(row)
+            if len(batch) == _PIECE_ROWS:
+                pieces.append(_piece(batch))
+                batch = []
+        pieces.append(_piece(batch))
+    pieces.append(_piece([{"path": rel, **blank_facts(), "fault": "symlink",
+                           "fault_detail": f"symbolic link to {_readlink(root_path / rel)}; not followed"}
+                          for rel in links]))
+
+    df = pd.concat([p for p in pieces if len(p)] or [_piece([])], ignore_index=True)
+    df = df.set_index("path").reindex(files + links).reset_index()
     for name in ("label", "group", "given_split"):
-        df[name] = pd.Series(assigned[name], dtype=object)
+        df[name] = assigned[name]
     df["issues"] = ""
     df = manifest.coerce(df).sort_values("path", kind="stable").reset_index(drop=True)
     df.attrs["scan"] = {"layout": chosen, "probed": len(todo), "reused": len(files) - len(todo),
@@ -142,33 +182,159 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
     return df
 
 
-def _reusable_rows(previous) -> dict:
-    if previous is None or len(previous) == 0:
-        return {}
-    cols = [c for c in _REUSED if c in previous.columns]
-    rows = previous[["path"] + cols].to_dict("records")
-    return {r["path"]: {c: _plain(r.get(c)) for c in _REUSED} for r in rows
-            if r.get("sha256") and not _plain(r.get("fault")) in ("unreadable",)}
+def previous_manifest(path, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):
+    """The manifest at ``path`` if a rescan of ``root`` may reuse its rows, else None.
 
+    Rows may be reused only when the manifest's sidecar says it was made from the same folder,
+    with the same pixel budget and the same labelprep version (a newer probe may compute facts
+    differently). A missing or unreadable manifest gives None.
+    """
+    from . import manifest
+    from .errors import LabelprepError
 
-def _plain(value):
-    """A pandas scalar as a plain Python value (NA -> None)."""
+    path = Path(path)
+    if not path.is_file():
+        return None
+    meta = manifest.read_sidecar(path)
+    stages = meta.get("stages", {})
+    budgets = {stages.get(name, {}).get("options", {}).get("max_pixels") for name in ("scan", "prepare")}
+    if (meta.get("root") != str(Path(root).resolve()) or meta.get("version") != _version()
+            or max_pixels not in budgets):
+        return None
     try:
-        import pandas as pd
-
-        if value is pd.NA or (isinstance(value, float) and value != value):
-            return None
-    except ImportError:
-        pass
-    return value.item() if hasattr(value, "item") else value
+        return manifest.read(path)
+    except LabelprepError:
+        return None
 
 
-def _unchanged(path: Path, old: dict) -> bool:
+def _version() -> str:
+    from . import __version__
+
+    return __version__
+
+
+def _piece(rows: list):
+    """Probed rows as a DataFrame with manifest dtypes (compact columns instead of dicts)."""
+    import pandas as pd
+
+    from . import manifest
+
+    return manifest.coerce(pd.DataFrame(rows, columns=["path", *FACTS]))
+
+
+def _known_facts(previous, logged: list):
+    """Facts that may be reused, indexed by path: journal rows win over ``previous`` (newer)."""
+    import pandas as pd
+
+    frames = []
+    if previous is not None and len(previous) and all(c in previous.columns for c in FACTS):
+        frames.append(previous[["path", *FACTS]])
+    if logged:
+        frames.append(_piece(logged))
+    if not frames:
+        return None
+    known = pd.concat(frames, ignore_index=True).drop_duplicates("path", keep="last")
+    # a row without a digest was never read; "unreadable" may be a passing I/O error: retry both
+    usable = (known["sha256"] != "") & (known["fault"] != "unreadable")
+    return known[usable].set_index("path")
+
+
+def _split_unchanged(root: Path, files: list, known):
+    """``(reused rows, paths to probe)``: a row is reused when the file's size and mtime match."""
+    if known is None or not len(known):
+        return _piece([]), list(files)
+    size = known["bytes"].to_dict()
+    mtime = known["mtime_ns"].to_dict()
+    unchanged, todo = [], []
+    for rel in files:
+        if rel in size and _stat_matches(root / rel, size[rel], mtime[rel]):
+            unchanged.append(rel)
+        else:
+            todo.append(rel)
+    return known.loc[unchanged].reset_index(), todo
+
+
+def _stat_matches(path: Path, size, mtime_ns) -> bool:
     try:
         st = os.stat(path, follow_symlinks=False)
     except OSError:
         return False
-    return st.st_size == old.get("bytes") and st.st_mtime_ns == old.get("mtime_ns")
+    return st.st_size == size and st.st_mtime_ns == mtime_ns
+
+
+def _read_journal(path, header: dict) -> list:
+    """Rows of a journal written for the same ``header``; unparsable (torn) lines are skipped."""
+    try:
+        with open(path, "rb") as fh:
+            lines = fh.read().split(b"\n")
+    except OSError:
+        return []
+    try:
+        if json.loads(lines[0]) != header:
+            return []  # another root, budget or version: its facts may not hold now
+    except ValueError:
+        return []
+    rows = []
+    for line in lines[1:]:
+        try:
+            row = json.loads(line)
+        except ValueError:
+            continue  # a line torn by a crash mid-write
+        if isinstance(row, dict) and row.keys() == {"path", *FACTS}:
+            rows.append(row)
+    return rows
+
+
+class _JournalWriter:
+    """Appends probed rows to the journal, flushed and fsynced in batches; a no-op without a path."""
+
+    def __init__(self, path, header: dict, *, fresh: bool):
+        self._path, self._header, self._fresh = path, header, fresh
+        self._fh = None
+        self._lines: list = []
+        self._flushed = time.monotonic()
+
+    def __enter__(self):
+        if self._path is None:
+            return self
+        try:
+            self._fh = open(self._path, "wb" if self._fresh else "ab")
+        except OSError as exc:
+            raise InputError(f"cannot write scan journal {self._path}: {exc.strerror}") from exc
+        if self._fresh:
+            self._lines.append(json.dumps(self._header))
+        elif self._fh.tell() and not _ends_with_newline(self._path):
+            self._lines.append("")  # end a torn last line, so the next row starts on its own line
+        return self
+
+    def append(self, row: dict) -> None:
+        if self._fh is None:
+            return
+        self._lines.append(json.dumps(row))
+        if len(self._lines) >= _FLUSH_ROWS or time.monotonic() - self._flushed >= _FLUSH_SECONDS:
+            self._flush()
+
+    def _flush(self) -> None:
+        if self._lines:
+            self._fh.write(("\n".join(self._lines) + "\n").encode("utf-8", errors="surrogateescape"))
+            self._fh.flush()
+            os.fsync(self._fh.fileno())
+            self._lines = []
+        self._flushed = time.monotonic()
+
+    def __exit__(self, *exc_info):
+        if self._fh is not None:
+            try:
+                self._flush()  # also on an interrupt: what was probed is kept
+            finally:
+                self._fh.close()
+        return False
+
+
+def _ends_with_newline(path) -> bool:
+    with open(path, "rb") as fh:
+        fh.seek(-1, os.SEEK_END)
+        return fh.read(1) == b"\n"
 
 
 def _readlink(path: Path) -> str:

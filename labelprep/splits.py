@@ -9,17 +9,19 @@ nothing is a unit of its own. Rows carrying an error code are left out (``split`
 
 Objective
 ---------
-For the splits ``k`` with target ratios ``r_k``, ``N`` usable rows and ``n_c`` rows of class
-``c``, let ``X_kc`` be the rows of class ``c`` placed in split ``k``, ``S_k`` the rows in split
-``k`` and ``w_k = 1 / (r_k N)**2``. The optimiser minimises::
+For the splits ``k`` with target ratios ``r_k``, ``N`` usable rows, ``n_c`` rows of class ``c``
+and overall class shares ``p_c = n_c / N``, let ``X_kc`` be the rows of class ``c`` placed in
+split ``k``, ``S_k`` the rows in split ``k`` and ``w_k = 1 / (r_k N)**2``. The optimiser
+minimises::
 
-    J = sum_k w_k * [ sum_c (X_kc - r_k n_c)**2 + (S_k - r_k N)**2 ]  +  P * Z
+    J = sum_k w_k * [ sum_c (X_kc - S_k p_c)**2 + (S_k - r_k N)**2 ]  +  P * Z
 
-``Z`` counts the (split, class) cells left empty although the class has at least as many units as
-there are splits; ``P = 1`` outweighs any share error, so every split gets every class whenever
-that is possible. Dividing by the square of the split's target size makes each term about the
-squared deviation of the class's share in that split (or of the split's relative size), so the
-small val and test splits are matched as closely as train.
+The first term is, up to the factor ``(S_k / r_k N)**2``, the squared deviation of each class's
+share in split ``k`` from its overall share; the second the squared relative size error of the
+split. Weighting by the split's target size matches the small val and test splits as closely as
+train. ``Z`` counts empty (split, class) cells that could have been filled: a class with ``u``
+units should reach the first ``u`` splits in the order train, test, val (all of them when ``u``
+is large enough); ``P = 1`` outweighs any share error.
 
 Search
 ------
@@ -28,12 +30,16 @@ Search
    placed in one vectorised pass that fills what each class still lacks in each split along a
    cumulative sum of unit sizes.
 2. Local moves: each round computes, for every movable unit and every split, the exact change of
-   ``J`` when that unit alone moves there (vectorised over units). The best move per (from, to,
+   ``J`` when that unit alone moves there (vectorised over units). The best moves per (from, to,
    main class) are applied together when the batch lowers ``J``; otherwise the batch is halved
-   until it does. The search stops when no move lowers ``J`` or after ``_MAX_ROUNDS`` rounds.
-3. Pair swaps: for every pair of splits, the unit pairs of the same main class whose exchange
-   lowers ``J`` most (a move alone cannot fix a split holding one unit too large and lacking a
-   smaller one). Rounds of moves and swaps alternate until neither helps.
+   until it does.
+3. Pair swaps, in the same round: for every two splits, the units whose moves cost least are
+   paired and the exact change of exchanging them is computed as a matrix; the best disjoint
+   exchanges are applied the same way. Swaps fix what single moves cannot (a split holding one
+   unit too large while lacking a smaller one).
+4. Rounds repeat until none lowers ``J`` or a round budget (proportional to the inverse of the
+   manifest's size) is spent. Problems of at most ``_RESTART_MAX_UNITS`` free units are solved
+   from ``_RESTARTS`` seeded starting orders and the lowest ``J`` is kept.
 
 Every step is a function of the manifest and the seed only, so the same input and seed give a
 byte-identical manifest.
@@ -52,13 +58,22 @@ THIN_CODE = "thin-class"
 # the largest units are placed one at a time (exact greedy); beyond this many, the rest go in one
 # vectorised pass, which keeps a million-row manifest fast while local moves clean up after it
 _GREEDY_UNITS = 4096
-# upper bound on improvement rounds; every round strictly lowers J, so this only caps run time
+# improvement rounds: every round strictly lowers J, so the cap only bounds run time. A round
+# costs about one pass over the (unit, class) entries; the budget below keeps a million-row,
+# 200,000-bundle manifest near 25 rounds (a few seconds) while small manifests run to the end.
 _MAX_ROUNDS = 400
+_MIN_ROUNDS = 20
+_ROUND_BUDGET = 25_000_000
+# restarts from other seeded orders for problems of at most this many free units
+_RESTARTS = 8
+_RESTART_MAX_UNITS = 2000
 # units per split tried in a swap round (those whose move alone costs least), so a round costs
 # at most this squared per pair of splits
 _SWAP_CANDIDATES = 256
 # weight of an empty (split, class) cell that could have been filled; far above any share term
 _EMPTY_CELL_PENALTY = 1.0
+# weight of a split's size error against its class-share errors (both in rows)
+_SIZE_WEIGHT = 1.0
 # objective changes smaller than this are rounding, not improvement
 _TOL = 1e-12
 # a unit holding kept rows from several old splits follows the first of these (test never loses)
@@ -118,7 +133,7 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     if keep_from is not None:
         _check_manifest(keep_from, "keep_from", ("path", "split"))
 
-    order = manifest["path"].astype(str).to_numpy().argsort(kind="stable")
+    order = manifest["path"].astype(str).argsort(kind="stable").to_numpy()
     frame = manifest.iloc[order]
     usable = _usable(frame)
     rows = frame[usable]
@@ -136,7 +151,7 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
             names, targets = ("train", "test"), np.array([1.0 - shares[-1], shares[-1]])
             old_split = np.where(old_split == "val", "train", old_split)
         fixed = _fixed_splits(units, old_split, names)
-        assigned, thin = _assign(units, targets, fixed, _rng(seed, 0), progress)
+        assigned, thin = _assign(units, targets, fixed, _priority(names), _rng(seed, 0), progress)
         row_split = assigned[units.row_unit]
         split_of_row[usable] = np.asarray(names, dtype=object)[row_split]
         if folds is not None:
@@ -145,7 +160,7 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
             valid = np.where((old_fold >= 0) & (old_fold < folds), old_fold, -1)
             sub_fixed = sub.fixed_from_rows(valid[row_split == 0])
             fold_units, thin_folds = _assign(sub, np.full(folds, 1.0 / folds), sub_fixed,
-                                             _rng(seed, 1), progress)
+                                             range(folds), _rng(seed, 1), progress)
             thin |= thin_folds
             rows_fold = np.full(len(rows), -1, dtype=np.int64)
             rows_fold[row_split == 0] = fold_units[sub.row_unit]
@@ -160,9 +175,15 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     out.loc[fold_values < 0, "fold"] = pd.NA
     thin_rows = np.zeros(len(frame), dtype=bool)
     thin_rows[usable] = thin[units.row_class]
-    issues = out["issues"] if "issues" in out.columns else pd.Series("", index=out.index, dtype=str)
-    out["issues"] = codes.replace_stage_codes(issues.fillna("").astype(str), "split",
-                                              {THIN_CODE: thin_rows[inverse]})
+    issues = (out["issues"].fillna("").astype(str) if "issues" in out.columns
+              else pd.Series("", index=out.index, dtype=str))
+    # only rows that carry or gain the code need rewriting (the helper parses row by row)
+    touch = thin_rows[inverse] | issues.str.contains(THIN_CODE, regex=False).to_numpy()
+    issues = issues.copy()
+    if touch.any():
+        issues[touch] = codes.replace_stage_codes(issues[touch], "split",
+                                                  {THIN_CODE: thin_rows[inverse][touch]})
+    out["issues"] = issues
     return out
 
 
@@ -286,6 +307,11 @@ def _check_folds(folds):
     return int(folds)
 
 
+def _priority(names):
+    """Split indices in the order a thin class should reach them: train (to learn it), test, val."""
+    return [names.index(n) for n in ("train", "test", "val") if n in names]
+
+
 def _rng(seed, stage):
     """The one source of randomness: a generator per (seed, stage) so stages do not share draws."""
     return np.random.default_rng([seed, stage])
@@ -295,9 +321,12 @@ def _rng(seed, stage):
 
 def _usable(frame):
     """Rows without an error code, as a numpy bool array."""
-    if "issues" not in frame.columns:
-        return np.ones(len(frame), dtype=bool)
-    return ~codes.errors_mask(frame["issues"].fillna("").astype(str)).to_numpy()
+    usable = np.ones(len(frame), dtype=bool)
+    if "issues" in frame.columns:
+        issues = frame["issues"].fillna("").astype(str)
+        flagged = (issues != "").to_numpy()  # most rows are clean; parse only the others
+        usable[flagged] = ~codes.errors_mask(issues[flagged]).to_numpy()
+    return usable
 
 
 def _fixed_splits(units, old_split, names):
@@ -408,10 +437,11 @@ class _Units:
 
     @classmethod
     def from_rows(cls, rows):
+        import pandas as pd
+
         n = len(rows)
         row_unit = _components(_link_keys(rows), n) if n else np.zeros(0, dtype=np.int64)
-        labels = rows["label"].fillna("").astype(str).to_numpy(dtype=object)
-        classes, row_class = np.unique(labels, return_inverse=True) if n else ([], np.zeros(0, int))
+        row_class, classes = pd.factorize(rows["label"].fillna("").astype(str), sort=True)
         return cls(row_unit.astype(np.int64), row_class.astype(np.int64), len(classes))
 
     def subset(self, keep):
@@ -438,35 +468,44 @@ class _Units:
 
 # ---------------------------------------------------------------- the optimiser
 
-def _assign(units, ratios, fixed, rng, progress):
+def _assign(units, ratios, fixed, priority, rng, progress):
     """A split index per unit, and which classes are too thin to reach every split.
 
     ``ratios`` holds one target share per split (0 for a split that only keeps fixed units);
-    ``fixed`` the split of each unit that may not move, -1 for a free unit. See the module
-    docstring for the objective and the search.
+    ``fixed`` the split of each unit that may not move, -1 for a free unit; ``priority`` the
+    split indices in the order a class too thin for all of them should reach them. See the
+    module docstring for the objective and the search.
     """
-    search = _Search(units, np.asarray(ratios, dtype=float), fixed)
-    free = np.flatnonzero(search.movable)
-    if free.size == 0:
-        return search.assign, search.thin
-    order = free[np.lexsort((rng.permutation(free.size), -units.size[free]))]
-    one_by_one, rest = order[:_GREEDY_UNITS], order[_GREEDY_UNITS:]
-    for u in progress(one_by_one.tolist(), total=len(one_by_one), label="split"):
-        search.place_best(u)
-    if rest.size:
-        search.fill(rest)
-    for _ in range(_MAX_ROUNDS):
-        moved = search.improve_moves()
-        swapped = search.improve_swaps()
-        if not (moved or swapped):
-            break
-    return search.assign, search.thin
+    ratios = np.asarray(ratios, dtype=float)
+    best = None
+    free = np.flatnonzero((fixed < 0) & (units.size > 0))
+    rounds = int(np.clip(_ROUND_BUDGET // max(units.eu.size, 1), _MIN_ROUNDS, _MAX_ROUNDS))
+    # small problems are cheap to solve again from other starting orders; keep the best
+    for _ in range(_RESTARTS if free.size <= _RESTART_MAX_UNITS else 1):
+        search = _Search(units, ratios, fixed, priority)
+        order = free[np.lexsort((rng.permutation(free.size), -units.size[free]))]
+        one_by_one, rest = order[:_GREEDY_UNITS], order[_GREEDY_UNITS:]
+        for u in progress(one_by_one.tolist(), total=len(one_by_one), label="split"):
+            search.place_best(u)
+        if rest.size:
+            search.fill(rest)
+        for _ in range(rounds):
+            if not search.improve():
+                break
+        if best is None or search.objective() < best.objective() - _TOL:
+            best = search
+    return best.assign, best.thin
 
 
 class _Search:
-    """State of the optimiser: counts per (split, class), the objective and its exact deltas."""
+    """State of the optimiser: rows per (split, class), the objective and its exact deltas.
 
-    def __init__(self, units, ratios, fixed):
+    A unit with class counts ``v`` and size ``s`` changes the residuals ``R_kc = X_kc - S_k p_c``
+    of the split it joins by ``v' = v - s p``; every delta below is a quadratic form in ``v'``,
+    evaluated from the unit's sparse entries without forming ``v'``.
+    """
+
+    def __init__(self, units, ratios, fixed, priority):
         self.u = units
         self.k = len(ratios)
         self.active = ratios > 0
@@ -475,15 +514,23 @@ class _Search:
         taking = ~outside[units.eu]
         n_c = np.bincount(units.ec[taking], units.ev[taking], minlength=units.n_classes)
         total = n_c.sum()
+        self.p = n_c / total if total else n_c
         self.target = np.outer(ratios, n_c)
         self.size_target = ratios * total
-        with np.errstate(divide="ignore"):
-            self.weight = np.where(self.active, 1.0 / np.maximum(ratios * total, 1e-300) ** 2, 0.0)
+        self.weight = np.zeros(self.k)
+        self.weight[self.active] = 1.0 / (ratios[self.active] * max(total, 1)) ** 2
         units_per_class = np.bincount(units.ec[taking], minlength=units.n_classes)
-        reachable = units_per_class >= self.active.sum()
-        self.thin = ~reachable & (units_per_class > 0)
-        # penalty mask over (split, class) cells: only active splits and reachable classes
-        self.penalised = np.outer(self.active, reachable) * _EMPTY_CELL_PENALTY
+        self.thin = (units_per_class < self.active.sum()) & (units_per_class > 0)
+        # penalised (split, class) cells: a class with u units should reach the first u active
+        # splits in priority order (all of them when it has enough units)
+        rank = np.full(self.k, self.k)
+        in_order = [k for k in priority if self.active[k]]
+        rank[in_order] = np.arange(len(in_order))
+        self.penalised = (rank[:, None] < units_per_class[None, :]) * _EMPTY_CELL_PENALTY
+        # per unit: v . p and |v'|^2 = |v|^2 - 2 s (v . p) + s^2 |p|^2
+        self.vp = np.bincount(units.eu, units.ev * self.p[units.ec], minlength=units.n_units)
+        vv = np.bincount(units.eu, units.ev ** 2, minlength=units.n_units)
+        self.norm2 = vv - 2 * units.size * self.vp + units.size ** 2 * (self.p @ self.p)
         self.x = np.zeros((self.k, units.n_classes))
         self.s = np.zeros(self.k)
         self.assign = fixed.copy()
@@ -502,24 +549,34 @@ class _Search:
         self._add(units, dest, +1)
         self.assign[units] = dest
 
+    def _residuals(self):
+        return self.x - np.outer(self.s, self.p), self.s - self.size_target
+
     def objective(self):
-        d = self.x - self.target
-        e = self.s - self.size_target
-        spread = self.weight @ ((d * d).sum(axis=1) + e * e)
+        r, e = self._residuals()
+        spread = self.weight @ ((r * r).sum(axis=1) + _SIZE_WEIGHT * e * e)
         return spread + float((self.penalised * (self.x == 0)).sum())
+
+    def _dots(self, units):
+        """``v'_u . R_k`` for every unit and split, with the entries it was computed from."""
+        r, e = self._residuals()
+        ent, local = self.u.entries_of(units)
+        c, v = self.u.ec[ent], self.u.ev[ent]
+        size = self.u.size[units]
+        dots = np.stack([np.bincount(local, v * r[k, c], minlength=len(units)) for k in range(self.k)],
+                        axis=1) - np.outer(size, r @ self.p)
+        return dots, e, ent, local
 
     # -- construction
     def place_best(self, unit):
         """Put one unit where the objective grows least."""
-        lo, hi = self.u.ptr[unit], self.u.ptr[unit + 1]
-        c, v = self.u.ec[lo:hi], self.u.ev[lo:hi]
+        one = np.array([unit])
+        dots, e, _, _ = self._dots(one)
         size = self.u.size[unit]
-        d = self.x[:, c] - self.target[:, c]
-        grow = v @ v + 2 * (d @ v) + size * size + 2 * size * (self.s - self.size_target)
+        grow = self.norm2[unit] + 2 * dots[0] + _SIZE_WEIGHT * (size * size + 2 * size * e)
         dest = int(np.argmin(np.where(self.active, self.weight * grow, np.inf)))
-        self.x[dest, c] += v
-        self.s[dest] += size
         self.assign[unit] = dest
+        self._add(one, np.array([dest]), +1)
 
     def fill(self, units):
         """Place many small units at once: each class's units share what it still lacks per split."""
@@ -529,8 +586,8 @@ class _Search:
         size = self.u.size[units]
         lack = np.clip(self.target - self.x, 0, None) * self.active[:, None]
         total_lack = lack.sum(axis=0)
-        share = np.where(total_lack > 0, lack / np.where(total_lack > 0, total_lack, 1),
-                         (self.target / np.maximum(self.target.sum(axis=0), 1e-300)))
+        fallback = self.target / np.maximum(self.target.sum(axis=0), 1e-300)
+        share = np.where(total_lack > 0, lack / np.where(total_lack > 0, total_lack, 1), fallback)
         bounds = np.cumsum(share, axis=0)[:-1]
         class_total = np.bincount(main, size, minlength=self.u.n_classes)
         class_start = np.concatenate([[0.0], np.cumsum(class_total)[:-1]])
@@ -543,78 +600,86 @@ class _Search:
     # -- improvement
     def move_deltas(self, units):
         """Exact change of the objective for moving each unit alone to each split (inf: no move)."""
-        ent, local = self.u.entries_of(units)
+        dots, e, ent, local = self._dots(units)
         c, v = self.u.ec[ent], self.u.ev[ent]
         src = self.assign[units]
         a = src[local]
-        d = self.x - self.target
         size = self.u.size[units]
-        e = self.s - self.size_target
-        leave = self.weight[a] * (v * v - 2 * v * d[a, c]) + self.penalised[a, c] * (self.x[a, c] == v)
-        out = np.bincount(local, leave, minlength=len(units))
-        out += self.weight[src] * (size * size - 2 * size * e[src])
+        rows = np.arange(len(units))
+        leave_empty = np.bincount(local, self.penalised[a, c] * (self.x[a, c] == v), minlength=len(units))
+        leave = (self.weight[src] * (self.norm2[units] - 2 * dots[rows, src]
+                                     + _SIZE_WEIGHT * (size * size - 2 * size * e[src])) + leave_empty)
         deltas = np.empty((len(units), self.k))
         for b in range(self.k):
-            join = self.weight[b] * (v * v + 2 * v * d[b, c]) - self.penalised[b, c] * (self.x[b, c] == 0)
-            deltas[:, b] = (np.bincount(local, join, minlength=len(units)) + out
-                            + self.weight[b] * (size * size + 2 * size * e[b]))
+            fill_empty = np.bincount(local, self.penalised[b, c] * (self.x[b, c] == 0), minlength=len(units))
+            deltas[:, b] = (self.weight[b] * (self.norm2[units] + 2 * dots[:, b]
+                                              + _SIZE_WEIGHT * (size * size + 2 * size * e[b]))
+                            - fill_empty + leave)
         deltas[:, ~self.active] = np.inf
-        deltas[np.arange(len(units)), src] = np.inf
+        deltas[rows, src] = np.inf
         return deltas
 
-    def improve_moves(self):
-        """One round of single-unit moves; True when the objective went down."""
+    def improve(self):
+        """One round of moves, then swaps between every two splits; True when J went down."""
         units = np.flatnonzero(self.movable)
         if units.size == 0:
             return False
         deltas = self.move_deltas(units)
+        improved = self._moves(units, deltas)
+        for a in range(self.k):
+            for b in range(a + 1, self.k):
+                if self.active[a] and self.active[b]:
+                    improved |= self._swap_pair(a, b, units, deltas)
+        return improved
+
+    def _moves(self, units, deltas):
+        """Apply the best single-unit moves, one per (from, to, main class)."""
         dest = deltas.argmin(axis=1)
         gain = deltas[np.arange(len(units)), dest]
         good = gain < -_TOL
         units, dest, gain = units[good], dest[good], gain[good]
-        # one move per (from, to, main class): moves in different cells barely interact
+        # moves in different (from, to, class) cells barely interact, so they go in one batch
         cell = (self.assign[units] * self.k + dest) * self.u.n_classes + self.u.main[units]
         chosen = _best_per_key(cell, gain)
         return self._apply_batch(units[chosen, None], dest[chosen, None])
 
-    def improve_swaps(self):
-        """One round of pair swaps between every two splits; True when the objective went down."""
-        improved = False
-        for a in range(self.k):
-            for b in range(a + 1, self.k):
-                if self.active[a] and self.active[b]:
-                    improved |= self._swap_pair(a, b)
-        return improved
-
-    def _swap_pair(self, a, b):
+    def _swap_pair(self, a, b, units, deltas):
         """Exchange units between ``a`` and ``b``: the best disjoint pairs among the candidates."""
-        in_a, move_ab = self._swap_candidates(a, b)
-        in_b, move_ba = self._swap_candidates(b, a)
+        in_a, move_ab = self._swap_candidates(a, b, units, deltas)
+        in_b, move_ba = self._swap_candidates(b, a, units, deltas)
         if in_a.size == 0 or in_b.size == 0:
             return False
-        # a swap is both moves plus their cross term -2 (w_a + w_b) (v_i . v_j + s_i s_j); the
+        # a swap is both moves plus their cross term -2 (w_a + w_b) (v'_i . v'_j + s_i s_j); the
         # empty-cell part is taken from the moves alone (the batch is checked against J anyway)
-        overlap = self._class_rows(in_a) @ self._class_rows(in_b).T
-        overlap += np.outer(self.u.size[in_a], self.u.size[in_b])
+        size_a, size_b = self.u.size[in_a], self.u.size[in_b]
+        overlap = (self._class_rows(in_a) @ self._class_rows(in_b).T
+                   - np.outer(self.vp[in_a], size_b) - np.outer(size_a, self.vp[in_b])
+                   + (self.p @ self.p + _SIZE_WEIGHT) * np.outer(size_a, size_b))
         gain = move_ab[:, None] + move_ba[None, :] - 2 * (self.weight[a] + self.weight[b]) * overlap
         partner = gain.argmin(axis=1)
         best = gain[np.arange(in_a.size), partner]
         good = best < -_TOL
         first, second, best = in_a[good], in_b[partner[good]], best[good]
         chosen = _best_per_key(second, best)  # each unit of b in one swap at most
-        units = np.stack([first[chosen], second[chosen]], axis=1)
+        pairs = np.stack([first[chosen], second[chosen]], axis=1)
         dest = np.tile(np.array([b, a]), (len(chosen), 1))
-        return self._apply_batch(units, dest)
+        return self._apply_batch(pairs, dest)
 
-    def _swap_candidates(self, source, dest):
-        """The ``_SWAP_CANDIDATES`` movable units of ``source`` that lose least by moving to ``dest``."""
-        units = np.flatnonzero(self.movable & (self.assign == source))
-        if units.size == 0:
-            return units, np.zeros(0)
-        delta = self.move_deltas(units)[:, dest]
-        keep = np.lexsort((units, delta))[:_SWAP_CANDIDATES]
-        keep.sort()
-        return units[keep], delta[keep]
+    def _swap_candidates(self, source, dest, units, deltas):
+        """Up to ``_SWAP_CANDIDATES`` units now in ``source`` that lose least by moving to ``dest``.
+
+        Chosen by the round's ``deltas`` (moves made since only shift them a little); their move
+        deltas are then computed afresh.
+        """
+        here = self.assign[units] == source
+        pool, cost = units[here], deltas[here, dest]
+        if pool.size > _SWAP_CANDIDATES:
+            cut = np.partition(cost, _SWAP_CANDIDATES - 1)[_SWAP_CANDIDATES - 1]
+            pool, cost = pool[cost <= cut], cost[cost <= cut]
+            pool = np.sort(pool[np.lexsort((pool, cost))[:_SWAP_CANDIDATES]])
+        if pool.size == 0:
+            return pool, np.zeros(0)
+        return pool, self.move_deltas(pool)[:, dest]
 
     def _class_rows(self, units):
         """Dense (units x classes) row counts."""

@@ -112,6 +112,21 @@ class TestBySplit:
         stats = by_split(m, split_column="given_split")
         assert list(stats["splits"]) == ["train", "extra", "holdout"]
 
+    def test_class_only_left_out(self):
+        """A class whose files are all left out shows with zeros and warnings, and the chi-square
+        (checked against scipy.stats.chisquare) runs over the classes present overall."""
+        from scipy.stats import chisquare
+
+        m = _manifest([("a", "train", 6), ("b", "train", 2), ("a", "val", 3), ("b", "val", 3), ("z", "", 4)])
+        stats = by_split(m, min_count=1)
+        assert stats["classes"] == ["a", "b", "z"]
+        assert stats["splits"]["train"]["counts"]["z"] == 0 and "z" in stats["splits"]["val"]["missing"]
+        assert {(w["split"], w["label"]) for w in stats["warnings"]} == {("train", "z"), ("val", "z")}
+        val = stats["splits"]["val"]
+        ref = chisquare([3, 3], [6 * 9 / 14, 6 * 5 / 14])
+        assert val["chi_square"]["dof"] == 1
+        assert val["chi_square"]["p_value"] == pytest.approx(ref.pvalue, rel=1e-9)
+
     def test_nothing_assigned(self):
         """With no row in a split the classes come from all rows and overall is empty."""
         stats = by_split(_manifest([("a", "", 2), ("b", "", 1)]))

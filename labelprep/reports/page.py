@@ -83,25 +83,28 @@ def _clusters(m, root) -> tuple[list, int]:
     """The clusters to draw, most urgent first, with members, distances and thumbnails."""
     table = cluster_table(m)
     shown = table.head(CLUSTERS_LISTED)
-    members_of = dict(tuple(m[m["dup_group"].isin(shown.index)].groupby("dup_group", sort=False)))
+    sub = m.loc[m["dup_group"].isin(shown.index)]
+    # one sort for all clusters (keeper first, then path); per-cluster pandas calls are slow
+    sub = sub.assign(_other=~sub["keeper"].fillna(False).astype(bool))
+    sub = sub.sort_values(["dup_group", "_other", "path"], kind="stable")
+    members_of: dict[int, list] = {}
+    for gid, *fields in zip(sub["dup_group"].astype("int64"), sub["path"], sub["label"], sub["split"],
+                            sub["phash"], sub["issues"]):
+        members_of.setdefault(int(gid), []).append(fields)
     out = []
-    for rank, (gid, facts) in enumerate(shown.iterrows()):
-        members = members_of[gid]
-        keeper_first = members.assign(_other=~members["keeper"].fillna(False).astype(bool))
-        members = keeper_first.sort_values(["_other", "path"], kind="stable")
-        keeper_hash = members["phash"].iloc[0]
+    for rank, (gid, size, conflict, leak) in enumerate(zip(shown.index, shown["size"], shown["conflict"], shown["leak"])):
+        members = members_of[int(gid)]
+        keeper_hash = members[0][3]
         with_thumbs = root is not None and rank < CLUSTERS_WITH_THUMBS
         files = []
-        for i, row in enumerate(members.itertuples(index=False)):
+        for i, (path, label, split, phash, issues) in enumerate(members):
             draw = with_thumbs and i < MEMBERS_PER_STRIP
-            files.append({
-                "path": row.path, "label": row.label, "split": row.split or "left out",
-                "keeper": i == 0, "distance": hamming(keeper_hash, row.phash),
-                "thumb": thumbnail(root, row.path) if draw and not _NO_PREVIEW & set(codes.parse(row.issues)) else None,
-                "drawn": draw,
-            })
-        out.append({"id": int(gid), "size": int(facts["size"]), "conflict": bool(facts["conflict"]),
-                    "leak": bool(facts["leak"]), "files": files})
+            previewable = draw and not _NO_PREVIEW & set(codes.parse(issues))
+            files.append({"path": path, "label": label, "split": split or "left out", "keeper": i == 0,
+                          "distance": hamming(keeper_hash, phash),
+                          "thumb": thumbnail(root, path) if previewable else None, "drawn": draw})
+        out.append({"id": int(gid), "size": int(size), "conflict": bool(conflict), "leak": bool(leak),
+                    "files": files})
     return out, len(table)
 
 

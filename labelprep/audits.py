@@ -1,0 +1,230 @@
+"""Audit of an existing split: what crosses from one split into another, and the class balance.
+
+A split leaks when the same picture, or nearly the same, sits in two splits (a model is then
+tested on what it trained on), or when one user group (subject, session, source) is spread over
+two splits. :func:`audit` finds every near-duplicate pair (perceptual hashes within
+``max_distance`` bits), every byte-identical pair (same ``sha256``, also for files without a hash)
+and every group that crosses splits, and adds the class balance per split from
+:func:`labelprep.balance.by_split`. :func:`render` turns the result into terminal text.
+"""
+
+from __future__ import annotations
+
+from . import defaults
+from .errors import ParameterError
+
+SPLIT_ORDER = ("train", "val", "test")
+_HEX_DIGITS = frozenset("0123456789abcdef")
+
+
+def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) -> dict:
+    """Every near-duplicate pair and user group that crosses splits, and the class balance.
+
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        Needs ``path``, ``label`` and the split column; reads ``phash``, ``sha256`` and
+        ``group`` when present. Rows whose split is ``""`` take no part in the leaks.
+    max_distance : int
+        Largest Hamming distance (bits of the 64-bit ``phash``) at which two files count as
+        near-duplicates, 0 to 64.
+    split_column : str, optional
+        The column holding each row's split. By default ``split`` when any row has one, else
+        ``given_split`` (the train/val/test folder the scanner found).
+
+    Returns
+    -------
+    dict
+        JSON-able:
+
+        - ``split_column``, ``max_distance``; ``rows``: rows in a split.
+        - ``near_leaks``: one dict per pair of files in different splits that are byte-identical
+          or within ``max_distance``: ``path_a``, ``path_b`` (``path_a`` sorts first),
+          ``label_a``, ``label_b``, ``split_a``, ``split_b``, ``distance`` (bits; 0 for
+          byte-identical files) and ``exact`` (same ``sha256``); sorted by the two paths.
+        - ``group_leaks``: one dict per user group found in more than one split: ``group``,
+          ``splits`` (``{split: rows}``) and ``paths`` (``{split: [paths]}``); sorted by group.
+        - ``leaking_files``: how many files are in at least one leaking pair or group.
+        - ``balance``: :func:`labelprep.balance.by_split` of the split column.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": ["a.png", "b.png", "c.png"], "label": ["cat", "cat", "dog"],
+    ...                   "split": ["train", "test", "test"], "group": ["", "", ""],
+    ...                   "phash": ["ff00ff00ff00ff00", "ff00ff00ff00ff01", "0123456789abcdef"],
+    ...                   "sha256": ["1" * 64, "2" * 64, "3" * 64]})
+    >>> result = audit(m, max_distance=4)
+    >>> [(p["path_a"], p["path_b"], p["distance"]) for p in result["near_leaks"]]
+    [('a.png', 'b.png', 1)]
+    >>> result["balance"]["splits"]["test"]["counts"]
+    {'cat': 1, 'dog': 1}
+    """
+    import pandas as pd
+
+    from .balance import by_split
+
+    if not isinstance(manifest, pd.DataFrame):
+        raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
+    if isinstance(max_distance, bool) or not isinstance(max_distance, int):
+        raise TypeError(f"max_distance must be an int, got {type(max_distance).__name__}")
+    if not 0 <= max_distance <= 64:
+        raise ParameterError(f"max_distance must be 0 to 64 bits, got max_distance={max_distance!r}")
+    for column in ("path", "label"):
+        if column not in manifest.columns:
+            raise ParameterError(f"the manifest has no {column!r} column")
+    column = _split_column(manifest, split_column)
+
+    frame = manifest.assign(_split=manifest[column].fillna("").astype(str),
+                            path=manifest["path"].astype(str),
+                            label=manifest["label"].fillna("").astype(str))
+    frame = frame[frame["_split"] != ""].sort_values("path", kind="stable").reset_index(drop=True)
+    pairs = _leaking_pairs(frame, max_distance)
+    groups = _leaking_groups(frame)
+    in_pairs = set(pairs["a"]).union(pairs["b"])
+    in_groups = {p for g in groups for paths in g["paths"].values() for p in paths}
+    near = [
+        {"path_a": frame.at[a, "path"], "path_b": frame.at[b, "path"],
+         "label_a": frame.at[a, "label"], "label_b": frame.at[b, "label"],
+         "split_a": frame.at[a, "_split"], "split_b": frame.at[b, "_split"],
+         "distance": int(d), "exact": bool(x)}
+        for a, b, d, x in zip(pairs["a"], pairs["b"], pairs["distance"], pairs["exact"])
+    ]
+    return {"split_column": column, "max_distance": max_distance, "rows": int(len(frame)),
+            "near_leaks": near, "group_leaks": groups,
+            "leaking_files": len({frame.at[i, "path"] for i in in_pairs} | in_groups),
+            "balance": by_split(manifest, split_column=column)}
+
+
+def render(result: dict, *, limit: int = 20) -> str:
+    """Terminal text for an :func:`audit` result, listing at most ``limit`` pairs and groups.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": ["a.png", "b.png"], "label": ["cat", "cat"],
+    ...                   "split": ["train", "test"], "sha256": ["1" * 64] * 2})
+    >>> print(render(audit(m)).splitlines()[1])
+    near-duplicate pairs across splits: 1 (1 byte-identical), radius 8 bits
+    """
+    if isinstance(limit, bool) or not isinstance(limit, int):
+        raise TypeError(f"limit must be an int, got {type(limit).__name__}")
+    if limit < 0:
+        raise ParameterError(f"limit must be 0 or more, got limit={limit!r}")
+    near, groups = result["near_leaks"], result["group_leaks"]
+    lines = [f"audit of column {result['split_column']!r}: {result['rows']} files in a split, "
+             f"{result['leaking_files']} of them leaking",
+             f"near-duplicate pairs across splits: {len(near)} "
+             f"({sum(p['exact'] for p in near)} byte-identical), radius {result['max_distance']} bits"]
+    for p in near[:limit]:
+        kind = "same bytes" if p["exact"] else f"{p['distance']:>2} bits"
+        lines.append(f"  {kind:>10}  {p['split_a']}:{p['path_a']} [{p['label_a']}]"
+                     f"  ~  {p['split_b']}:{p['path_b']} [{p['label_b']}]")
+    lines += _more(len(near), limit)
+    lines.append(f"groups across splits: {len(groups)}")
+    for g in groups[:limit]:
+        spread = ", ".join(f"{name} {count}" for name, count in g["splits"].items())
+        lines.append(f"  {g['group']}: {spread}")
+    lines += _more(len(groups), limit)
+    lines += _balance_lines(result["balance"])
+    return "\n".join(lines)
+
+
+def _more(count, limit):
+    return [f"  ... and {count - limit} more (write them all with --json)"] if count > limit else []
+
+
+def _balance_lines(balance: dict) -> list[str]:
+    """A class-by-split table of counts and shares, then the chi-square p-value per split."""
+    names = [n for n in balance["splits"]]
+    classes = balance["classes"]
+    width = max([len(c) for c in classes] + [5])
+    lines = ["class balance (rows, share of the split):",
+             "  " + "class".ljust(width) + "".join(f"{n:>20}" for n in names)]
+    for c in classes:
+        cells = "".join(f"{balance['splits'][n]['counts'][c]:>11} ({balance['splits'][n]['shares'][c]:6.1%})"
+                        for n in names)
+        lines.append("  " + c.ljust(width) + cells)
+    lines.append("  " + "rows".ljust(width) + "".join(f"{balance['splits'][n]['rows']:>20}" for n in names))
+    tests = []
+    for n in names:
+        chi = balance["splits"][n]["chi_square"]
+        if chi is not None:
+            tests.append(f"{n} p={chi['p_value']:.3g}")
+    if tests:
+        lines.append("  chi-square of class counts against the overall shares: " + ", ".join(tests))
+    return lines
+
+
+def _split_column(manifest, split_column):
+    """The column to audit: the one asked for, else ``split`` when filled, else ``given_split``."""
+    if split_column is not None:
+        if not isinstance(split_column, str):
+            raise TypeError(f"split_column must be a column name (str), got {type(split_column).__name__}")
+        if split_column not in manifest.columns:
+            raise ParameterError(f"the manifest has no {split_column!r} column")
+        return split_column
+    for column in ("split", "given_split"):
+        if column in manifest.columns and (manifest[column].fillna("").astype(str) != "").any():
+            return column
+    raise ParameterError("nothing to audit: no row has a 'split' or a 'given_split' "
+                         "(run labelprep split, or scan a ROOT/<train|val|test>/<label> folder)")
+
+
+def _leaking_pairs(frame, max_distance):
+    """Row pairs ``a < b`` in different splits: near (phash) or exact (sha256) copies.
+
+    Returns a DataFrame with columns ``a``, ``b``, ``distance`` and ``exact``.
+    """
+    import numpy as np
+    import pandas as pd
+
+    from .neighbors import radius_pairs
+
+    parts = []
+    if "phash" in frame.columns:
+        phash = frame["phash"].fillna("").astype(str).str.lower()
+        valid = phash.map(lambda h: len(h) == 16 and set(h) <= _HEX_DIGITS).to_numpy(dtype=bool)
+        rows = np.flatnonzero(valid)
+        hashes = np.array([int(h, 16) for h in phash[valid]], dtype=np.uint64)
+        i, j, dist = radius_pairs(hashes, max_distance)
+        parts.append(pd.DataFrame({"a": rows[i], "b": rows[j], "distance": dist}))
+    if "sha256" in frame.columns:
+        sha = pd.DataFrame({"sha": frame["sha256"].fillna("").astype(str), "row": np.arange(len(frame))})
+        sha = sha[sha["sha"] != ""]
+        sha = sha[sha.duplicated("sha", keep=False)]
+        both = sha.merge(sha, on="sha", suffixes=("_a", "_b"))
+        both = both[both["row_a"] < both["row_b"]]
+        parts.append(pd.DataFrame({"a": both["row_a"].to_numpy(), "b": both["row_b"].to_numpy(),
+                                   "distance": 0}))
+    if not parts:
+        return pd.DataFrame({"a": [], "b": [], "distance": [], "exact": []}, dtype=np.int64)
+    pairs = pd.concat(parts, ignore_index=True).astype(np.int64)
+    pairs = pairs.sort_values(["a", "b", "distance"], kind="stable").drop_duplicates(["a", "b"])
+    split = frame["_split"].to_numpy(dtype=object)
+    pairs = pairs[split[pairs["a"].to_numpy()] != split[pairs["b"].to_numpy()]]
+    if "sha256" in frame.columns:
+        sha = frame["sha256"].fillna("").astype(str).to_numpy(dtype=object)
+        a, b = pairs["a"].to_numpy(), pairs["b"].to_numpy()
+        exact = (sha[a] == sha[b]) & (sha[a] != "")
+    else:
+        exact = np.zeros(len(pairs), dtype=bool)
+    # byte-identical files have identical hashes: distance 0 even where no hash was computed
+    return pairs.assign(exact=exact, distance=np.where(exact, 0, pairs["distance"])).reset_index(drop=True)
+
+
+def _leaking_groups(frame) -> list[dict]:
+    """One dict per user group whose rows sit in more than one split."""
+    if "group" not in frame.columns:
+        return []
+    grouped = frame.assign(group=frame["group"].fillna("").astype(str))
+    grouped = grouped[grouped["group"] != ""]
+    spread = grouped.groupby("group")["_split"].nunique()
+    leaking = grouped[grouped["group"].isin(spread.index[spread > 1])]
+    out = []
+    for name, rows in leaking.groupby("group", sort=True):
+        names = [s for s in SPLIT_ORDER if (rows["_split"] == s).any()]
+        names += sorted(set(rows["_split"]) - set(SPLIT_ORDER))
+        paths = {s: sorted(rows.loc[rows["_split"] == s, "path"]) for s in names}
+        out.append({"group": name, "splits": {s: len(p) for s, p in paths.items()}, "paths": paths})
+    return out

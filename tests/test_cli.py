@@ -1,0 +1,96 @@
+"""The command line end to end: scan, prepare, demo, exit codes, fast start-up."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pandas as pd
+import pytest
+
+import labelprep
+from labelprep import manifest
+from labelprep.cli import main
+
+
+def test_help_imports_nothing_heavy():
+    """`labelprep --help` must not import pandas, numpy or Pillow (start-up stays fast)."""
+    code = ("import sys; from click.testing import CliRunner; from labelprep.cli import main; "
+            "r = CliRunner().invoke(main, ['--help']); assert r.exit_code == 0, r.output; "
+            "print(sorted(m for m in ('pandas', 'numpy', 'PIL') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
+
+
+def test_python_dash_m_works():
+    out = subprocess.run([sys.executable, "-m", "labelprep", "--version"], capture_output=True, text=True)
+    assert out.returncode == 0
+    assert labelprep.__version__ in out.stdout
+
+
+def test_public_api_matches_all():
+    """Every name in __all__ resolves, and the stage functions are there."""
+    for name in labelprep.__all__:
+        assert getattr(labelprep, name) is not None
+    for name in ("scan", "check", "group", "split", "report", "export", "prepare", "audit"):
+        assert callable(getattr(labelprep, name))
+
+
+class TestScanCommand:
+    def test_scan_writes_manifest_and_sidecar(self, runner, class_tree, tmp_path):
+        out = tmp_path / "m.csv"
+        result = runner.invoke(main, ["scan", str(class_tree), "-o", str(out), "--jobs", "1"])
+        assert result.exit_code == 0, result.output
+        m = manifest.read(out)
+        assert len(m) == 12
+        assert sorted(m["label"].unique()) == ["cat", "dog", "eel"]
+        assert m["path"].tolist() == sorted(m["path"])
+        side = manifest.read_sidecar(out)
+        assert side["root"] == str(class_tree.resolve())
+        assert side["stages"]["scan"]["options"]["layout"] == "auto"
+        assert "12 files indexed" in result.output
+
+    def test_scan_matches_library(self, runner, class_tree, tmp_path):
+        """The command writes exactly what the library function returns."""
+        out = tmp_path / "m.csv"
+        runner.invoke(main, ["scan", str(class_tree), "-o", str(out), "--jobs", "1"], catch_exceptions=False)
+        lib = labelprep.scan(class_tree, jobs=1)
+        assert out.read_bytes() == manifest.to_csv_bytes(lib)
+
+    def test_same_tree_same_bytes_across_jobs(self, runner, class_tree, tmp_path):
+        a, b = tmp_path / "a.csv", tmp_path / "b.csv"
+        runner.invoke(main, ["scan", str(class_tree), "-o", str(a), "--jobs", "1"], catch_exceptions=False)
+        runner.invoke(main, ["scan", str(class_tree), "-o", str(b), "--jobs", "2"], catch_exceptions=False)
+        assert a.read_bytes() == b.read_bytes()
+
+    def test_group_pattern_and_hidden_files(self, runner, class_tree, tmp_path):
+        (class_tree / ".hidden.jpg").write_bytes(b"x")
+        out = tmp_path / "m.csv"
+        result = runner.invoke(main, ["scan", str(class_tree), "-o", str(out), "--jobs", "1",
+                                      "--group-pattern", r"/(g\d)_"])
+        assert result.exit_code == 0
+        assert "skipped 1 hidden or system files" in result.output
+        m = manifest.read(out)
+        assert set(m["group"]) == {"g0", "g1"}
+
+    def test_foreign_output_needs_force(self, runner, class_tree, tmp_path):
+        out = tmp_path / "precious.csv"
+        out.write_text("do,not\nlose,me\n")
+        result = runner.invoke(main, ["scan", str(class_tree), "-o", str(out)])
+        assert result.exit_code == 2
+        assert "pass --force" in result.output
+        assert out.read_text() == "do,not\nlose,me\n"
+
+    def test_missing_root_is_usage_error(self, runner, tmp_path):
+        result = runner.invoke(main, ["scan", str(tmp_path / "nope"), "-o", str(tmp_path / "m.csv")])
+        assert result.exit_code == 2
+
+    def test_bad_label_table_is_one_line_error(self, runner, class_tree, tmp_path):
+        table = tmp_path / "labels.csv"
+        table.write_text("path,label\n../../etc/passwd,cat\n")
+        result = runner.invoke(main, ["scan", str(class_tree), "-o", str(tmp_path / "m.csv"),
+                                      "--labels", str(table)])
+        assert result.exit_code == 2
+        assert "line 2" in result.output and "escapes the root" in result.output
+        assert not (tmp_path / "m.csv").exists()
