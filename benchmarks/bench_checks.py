@@ -76,7 +76,7 @@ def check_throughput(rows: int, repeat: int) -> None:
         "format": rng.choice(["jpeg", "png", ""], rows, p=[0.8, 0.19, 0.01]),
         "width": rng.integers(8, 4000, rows), "height": rng.integers(8, 4000, rows),
         "mode": rng.choice(["RGB", "L", "CMYK", "RGBA"], rows, p=[0.9, 0.05, 0.02, 0.03]),
-        "frames": np.ones(rows, dtype=int), "has_alpha": np.zeros(rows, dtype=bool),
+        "bits": np.full(rows, 8), "frames": np.ones(rows, dtype=int), "has_alpha": np.zeros(rows, dtype=bool),
         "has_gps": rng.random(rows) < 0.05, "spread": rng.uniform(0, 80, rows),
         "fault": rng.choice(["", "truncated", "not-image"], rows, p=[0.98, 0.01, 0.01]),
         "fault_detail": "", "issues": "",

@@ -161,6 +161,16 @@ def _stats(labels: list[str], classes: list[str], beta: float, *, reference) -> 
 def normalised_entropy(counts) -> float:
     """Shannon entropy of ``counts``' shares over ln(len(counts)): 1 when even, 0 when one class.
 
+    Parameters
+    ----------
+    counts : sequence of int
+        At least two counts, not all zero.
+
+    Returns
+    -------
+    float
+        Pielou's evenness, in [0, 1].
+
     Examples
     --------
     >>> round(normalised_entropy([5, 5, 5]), 12)
@@ -176,6 +186,17 @@ def normalised_entropy(counts) -> float:
 def effective_number(n: int, beta: float) -> float:
     """The effective number of ``n`` samples, ``(1 - beta**n) / (1 - beta)`` (Cui et al. 2019).
 
+    Parameters
+    ----------
+    n : int
+        Samples of the class.
+    beta : float
+        ``0 <= beta < 1``; 0 counts every class as one sample, values near 1 approach ``n``.
+
+    Returns
+    -------
+    float
+
     Examples
     --------
     >>> round(effective_number(3, 0.9), 10)   # 1 + 0.9 + 0.81
@@ -189,6 +210,18 @@ def effective_number(n: int, beta: float) -> float:
 
 def class_balanced_weights(counts: dict, beta: float) -> dict:
     """Weights proportional to 1 / effective number, scaled to sum to the number of classes.
+
+    Parameters
+    ----------
+    counts : dict
+        ``{class: samples}``, every count positive.
+    beta : float
+        As in :func:`effective_number`.
+
+    Returns
+    -------
+    dict
+        ``{class: weight}`` in the order of ``counts``.
 
     Examples
     --------
@@ -230,6 +263,18 @@ def chi_square(observed, expected) -> dict:
 
 def chi2_sf(x: float, dof: int) -> float:
     """Survival function of the chi-square distribution: Q(dof / 2, x / 2).
+
+    Parameters
+    ----------
+    x : float
+        The statistic.
+    dof : int
+        Degrees of freedom, 1 or more.
+
+    Returns
+    -------
+    float
+        P(X >= x) for X chi-square distributed with ``dof`` degrees of freedom.
 
     Examples
     --------

@@ -23,7 +23,7 @@ _MODE_NOTES = {"CMYK": "CMYK colour (4 ink channels)", "I": "32-bit integer samp
                "YCbCr": "YCbCr colour, not RGB", "LAB": "L*a*b* colour, not RGB",
                "HSV": "HSV colour, not RGB"}
 # the facts the rules read, beyond the core columns
-_NEEDED = ("path", "label", "format", "width", "height", "mode", "frames", "has_alpha",
+_NEEDED = ("path", "label", "format", "width", "height", "mode", "bits", "frames", "has_alpha",
            "has_gps", "spread", "fault", "fault_detail")
 
 
@@ -81,10 +81,9 @@ def _no_label(df, limits):
 
 
 def _wrong_extension(df, limits):
-    from .formats import FORMAT_OF_EXTENSION
+    from .formats import format_of_extension
 
-    # vectorised form of formats.format_of_extension
-    named = df["path"].str.extract(r"(\.[^./]*)$")[0].str.lower().map(FORMAT_OF_EXTENSION).fillna("")
+    named = df["path"].map(format_of_extension)
     return df["format"].ne("") & named.ne("") & named.ne(df["format"])
 
 
@@ -93,14 +92,10 @@ def _why_wrong_extension(row, limits) -> str:
     return f"named {name[name.rfind('.'):]} but the content is {row['format']}"
 
 
-def _aspect(df):
+def _extreme_aspect(df, limits):
     long_side = df[["width", "height"]].max(axis=1).astype("Float64")
     short_side = df[["width", "height"]].min(axis=1).astype("Float64")
-    return long_side / short_side.where(short_side > 0)
-
-
-def _extreme_aspect(df, limits):
-    return (_aspect(df) > limits["max_aspect"]).fillna(False)
+    return (long_side / short_side.where(short_side > 0) > limits["max_aspect"]).fillna(False)
 
 
 def _why_extreme_aspect(row, limits) -> str:
@@ -110,20 +105,28 @@ def _why_extreme_aspect(row, limits) -> str:
 
 def _unusual_mode(df, limits):
     mode = df["mode"]
-    return mode.ne("") & (~mode.isin(list(_PLAIN_MODES)) | df["has_alpha"].fillna(False).astype(bool))
+    deep = (df["bits"] > 8).fillna(False).astype(bool)
+    alpha = df["has_alpha"].fillna(False).astype(bool)
+    return mode.ne("") & (~mode.isin(list(_PLAIN_MODES)) | alpha | deep)
 
 
 def _why_unusual_mode(row, limits) -> str:
-    mode = row["mode"]
+    mode, bits = row["mode"], row["bits"]
+    notes = []
     if mode.startswith("I;16"):
-        return f"16-bit grey samples ({mode})"
-    if mode in _MODE_NOTES:
-        return _MODE_NOTES[mode]
-    if mode == "P":
-        return "palette with a transparent entry"
-    if mode in _PLAIN_MODES:
-        return f"{mode} with a transparent colour key"
-    return f"alpha channel ({mode})" if "A" in mode or "a" in mode else f"mode {mode}"
+        notes.append(f"16-bit grey samples ({mode})")
+    elif mode in _MODE_NOTES:
+        notes.append(_MODE_NOTES[mode])
+    elif _known(bits) and bits > 8:
+        notes.append(f"{int(bits)}-bit samples, which Pillow reads as 8-bit {mode}")
+    if _known(row["has_alpha"]) and row["has_alpha"]:
+        if mode == "P":
+            notes.append("palette with a transparent entry")
+        elif mode in _PLAIN_MODES:
+            notes.append(f"{mode} with a transparent colour key")
+        else:
+            notes.append(f"alpha channel ({mode})")
+    return "; ".join(notes) or f"mode {mode}"
 
 
 RULES: dict[str, _Rule] = {
@@ -212,7 +215,8 @@ def check(manifest, *, min_side: int = defaults.MIN_SIDE, max_pixels: int = defa
     >>> import pandas as pd
     >>> m = pd.DataFrame({"path": ["a/x.jpg", "a/y.png"], "label": ["a", "a"],
     ...                   "format": ["jpeg", "jpeg"], "width": [640, 20], "height": [480, 16],
-    ...                   "mode": ["RGB", "CMYK"], "frames": [1, 1], "has_alpha": [False, False],
+    ...                   "mode": ["RGB", "CMYK"], "bits": [8, 8], "frames": [1, 1],
+    ...                   "has_alpha": [False, False],
     ...                   "has_gps": [False, True], "spread": [40.0, 35.0], "fault": ["", ""],
     ...                   "fault_detail": ["", ""]})
     >>> check(m)["issues"].tolist()

@@ -76,9 +76,6 @@ SCAN_OPTIONS = _stack(
 CHECK_OPTIONS = _stack(
     click.option("--min-side", type=click.IntRange(min=1), default=defaults.MIN_SIDE, show_default=True,
                  help="Images whose shorter side is below this many pixels are flagged too-small."),
-)
-# check-only limits; prepare uses their defaults until pipeline.prepare takes them too
-_CHECK_LIMITS = _stack(
     click.option("--max-aspect", type=click.FloatRange(min=1), default=defaults.MAX_ASPECT,
                  show_default=True, metavar="RATIO",
                  help="Long side over short side above this is flagged extreme-aspect."),
@@ -202,7 +199,6 @@ def _gate(m, fail_on: str):
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
 @CHECK_OPTIONS
 @_max_pixels
-@_CHECK_LIMITS
 @_fail_on
 @_quiet
 def check(manifest_path, fail_on, quiet, **limits):
@@ -240,16 +236,29 @@ def group(manifest_path, max_distance, keep_conflicts, quiet):
 @SPLIT_OPTIONS
 @_quiet
 def split(manifest_path, ratios, seed, folds, keep_from, quiet):
-    """Assign train/val/test so that no cluster or group spans two splits."""
-    from .splits import split as run
+    """Assign train/val/test so that no cluster or group spans two splits.
+
+    Two ratios mean train,test. With --folds K the split holds train and test and every train
+    file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
+    path) keep their split and only new files are placed.
+    """
+    from .splits import split as run, split_summary
 
     old = _read(keep_from) if keep_from is not None else None
     m = run(_read(manifest_path), ratios=ratios, seed=seed, folds=folds, keep_from=old,
             progress=_progress(quiet))
     _write_back(m, manifest_path, "split", {"ratios": list(ratios), "seed": seed, "folds": folds,
                                             "keep_from": keep_from})
-    counts = m["split"].replace("", "left out").value_counts()
-    _say(quiet, "  ".join(f"{name}: {counts.get(name, 0)}" for name in ("train", "val", "test", "left out")))
+    summary = split_summary(m, keep_from=old)
+    sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
+    sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
+    _say(quiet, "  ".join(sizes + [f"left out: {summary['left_out']}"]))
+    if old is not None:
+        _say(quiet, f"kept {summary['kept']} files where they were, placed {summary['placed']} new, "
+                    f"moved {summary['moved']}, dropped {summary['dropped']} (now with an error)")
+    for name, labels in summary["missing"].items():
+        _say(quiet, f"warning: {name} has no file of class {', '.join(labels)} "
+                    "(too few groups or clusters to reach every split)", err=True)
 
 
 @main.command()
@@ -387,7 +396,7 @@ def demo(folder, seed, jobs, force, quiet):
     from .demo import make_demo, planted_summary
     from .pipeline import prepare as run
 
-    photos = make_demo(folder / "photos", seed=seed, force=force)
+    photos = make_demo(folder, seed=seed, force=force)
     _say(quiet, f"generated {photos}: {planted_summary(photos)}")
     m, summary = run(photos, folder / "out", group_pattern=r"^[^/]+/(pool-\d+)-", seed=seed,
                      jobs=jobs, force=force, progress=_progress(quiet))

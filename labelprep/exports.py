@@ -137,6 +137,22 @@ def plan_targets(manifest):
     the first 8 hex digits of the SHA-256 of its source path before the extension, which depends
     on nothing but that path, so a re-export names it the same.
 
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        Needs ``path``, ``label``, ``split`` and ``sha256``; rows with an empty split are skipped.
+
+    Returns
+    -------
+    pandas.DataFrame
+        One row per file to export, in split then target order.
+
+    Raises
+    ------
+    InputError
+        A split or label cannot be a folder name (empty, ``.`` or ``..``), or two labels would
+        share one folder once ``/`` and ``\\`` are replaced by ``_``.
+
     Examples
     --------
     >>> import pandas as pd
@@ -147,23 +163,31 @@ def plan_targets(manifest):
     """
     rows = manifest[manifest["split"].fillna("").astype(str) != ""]
     plan = rows[["split", "label", "path", "sha256"]].astype(str).copy()
+    if not plan["path"].is_unique:
+        raise InputError(f"path {plan['path'][plan['path'].duplicated()].iloc[0]!r} is in the manifest twice")
     plan["split_dir"] = _folder_names(plan["split"], "split")
     plan["label_dir"] = _folder_names(plan["label"], "label")
     plan["name"] = [PurePosixPath(p).name for p in plan["path"]]
-    plan["key"] = plan["split_dir"] + "/" + plan["label_dir"] + "/" + plan["name"].str.casefold()
-    clash = plan["key"].duplicated(keep=False)
+    plan["renamed"] = False
+    key = _folder_key(plan)
+    # distinct paths have distinct digests, so a longer tag always ends a (vanishingly rare)
+    # clash between a tagged name and another file's own name
     for length in (8, 16, 64):
-        plan["renamed"] = clash
-        plan.loc[clash, "name"] = [_tagged(p, length) for p in plan.loc[clash, "path"]]
-        plan["key"] = plan["split_dir"] + "/" + plan["label_dir"] + "/" + plan["name"].str.casefold()
-        if not plan["key"].duplicated().any():
+        if key.is_unique:
             break
-        clash = plan["renamed"] | plan["key"].duplicated(keep=False)
+        plan["renamed"] |= key.duplicated(keep=False)
+        plan.loc[plan["renamed"], "name"] = [_tagged(p, length) for p in plan.loc[plan["renamed"], "path"]]
+        key = _folder_key(plan)
     plan["target"] = plan["split_dir"] + "/" + plan["label_dir"] + "/" + plan["name"]
     order = {s: i for i, s in enumerate(SPLIT_ORDER)}
     plan["_rank"] = plan["split"].map(lambda s: order.get(s, len(order)))
     plan = plan.sort_values(["_rank", "split", "target"], kind="stable")
     return plan[["split", "label", "target", "path", "sha256", "renamed"]].reset_index(drop=True)
+
+
+def _folder_key(plan):
+    """Target paths as a case-insensitive filesystem compares them."""
+    return plan["split_dir"] + "/" + plan["label_dir"] + "/" + plan["name"].str.casefold()
 
 
 def _tagged(path: str, length: int) -> str:
@@ -344,8 +368,33 @@ def _write_lists(table, dest: Path) -> None:
 def strip_location(data: bytes) -> tuple[bytes, bool]:
     """``data`` without its EXIF GPS block (and XMP packets with ``exif:GPS`` tags), pixels untouched.
 
-    Returns the new bytes and whether anything was removed. JPEG, PNG and WebP are rewritten
-    segment by segment; another format that carries GPS data raises ``_Skip``.
+    JPEG, PNG and WebP are rewritten segment by segment; the result is read back to confirm that
+    no GPS block is left.
+
+    Parameters
+    ----------
+    data : bytes
+        A whole image file.
+
+    Returns
+    -------
+    (bytes, bool)
+        The new file and whether anything was removed (``data`` itself when nothing was).
+
+    Raises
+    ------
+    _Skip
+        Another format that carries GPS data, or location data stored where it is not removed;
+        :func:`export` reports the file and goes on.
+
+    Examples
+    --------
+    >>> import io
+    >>> from PIL import Image
+    >>> buffer = io.BytesIO()
+    >>> Image.new("RGB", (8, 8)).save(buffer, "PNG")
+    >>> strip_location(buffer.getvalue())[1]
+    False
     """
     from PIL import Image
 

@@ -39,8 +39,8 @@ EXTENSIONS = {
     "avif": (".avif",),
     "heif": (".heic", ".heif"),
 }
-FORMAT_OF_EXTENSION = {ext: fmt for fmt, exts in EXTENSIONS.items() for ext in exts}
-IMAGE_EXTENSIONS = frozenset(FORMAT_OF_EXTENSION)
+_FORMAT_OF_EXTENSION = {ext: fmt for fmt, exts in EXTENSIONS.items() for ext in exts}
+IMAGE_EXTENSIONS = frozenset(_FORMAT_OF_EXTENSION)
 
 HEAD_BYTES = 32  # enough for every signature above
 
@@ -82,7 +82,7 @@ def sniff(head: bytes) -> str:
 def format_of_extension(name: str) -> str:
     """The format an extension usually names (``"photo.JPG"`` -> ``"jpeg"``); ``""`` when none."""
     dot = name.rfind(".")
-    return FORMAT_OF_EXTENSION.get(name[dot:].lower(), "") if dot >= 0 else ""
+    return _FORMAT_OF_EXTENSION.get(name[dot:].lower(), "") if dot >= 0 else ""
 
 
 TRUNCATED = "truncated"

@@ -14,6 +14,7 @@ REPORT_HTML = "report.html"
 
 def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, include_hidden=False,
             jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
+            max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
             max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, ratios=defaults.RATIOS,
             seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
@@ -56,11 +57,13 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
              include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
              previous=previous, progress=progress)
     scan_facts = m.attrs.get("scan", {})
-    m = check(m, min_side=min_side, max_pixels=max_pixels)
+    m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
+              min_spread=min_spread)
     m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, progress=progress)
     m = split(m, ratios=ratios, seed=seed, folds=folds, keep_from=keep_from, progress=progress)
     options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,
+               "max_aspect": max_aspect, "min_spread": min_spread,
                "max_distance": max_distance, "keep_conflicts": keep_conflicts,
                "ratios": list(ratios), "seed": seed, "folds": folds}
     meta = {"root": str(root.resolve()), "seed": seed,

@@ -137,7 +137,10 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     frame = manifest.iloc[order]
     usable = _usable(frame)
     rows = frame[usable]
-    units = _Units.from_rows(rows)
+    # links are followed through left-out rows too: a truncated file in group g1 that is a near
+    # copy of a file in g3 still ties g1 to g3 (same subject), so both stay in one split
+    linked = _components(_link_keys(frame), len(frame))
+    units = _Units.from_rows(rows, linked[usable])
     old_split, old_fold = _old_assignment(rows, keep_from)
     progress = progress or (lambda iterable, **_: iterable)
 
@@ -145,26 +148,8 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     fold_of_row = np.full(len(frame), -1, dtype=np.int64)
     thin = np.zeros(units.n_classes, dtype=bool)
     if units.n_units:
-        if folds is None:
-            names, targets = SPLIT_NAMES, shares
-        else:  # train pool and test; the val share joins train, old val rows count as train
-            names, targets = ("train", "test"), np.array([1.0 - shares[-1], shares[-1]])
-            old_split = np.where(old_split == "val", "train", old_split)
-        fixed = _fixed_splits(units, old_split, names)
-        assigned, thin = _assign(units, targets, fixed, _priority(names), _rng(seed, 0), progress)
-        row_split = assigned[units.row_unit]
-        split_of_row[usable] = np.asarray(names, dtype=object)[row_split]
-        if folds is not None:
-            pool = assigned == 0
-            sub = units.subset(pool)
-            valid = np.where((old_fold >= 0) & (old_fold < folds), old_fold, -1)
-            sub_fixed = sub.fixed_from_rows(valid[row_split == 0])
-            fold_units, thin_folds = _assign(sub, np.full(folds, 1.0 / folds), sub_fixed,
-                                             range(folds), _rng(seed, 1), progress)
-            thin |= thin_folds
-            rows_fold = np.full(len(rows), -1, dtype=np.int64)
-            rows_fold[row_split == 0] = fold_units[sub.row_unit]
-            fold_of_row[usable] = rows_fold
+        split_of_row[usable], fold_of_row[usable], thin = _place(
+            units, old_split, old_fold, shares, folds, seed, progress)
 
     out = manifest.copy()
     inverse = np.empty_like(order)
@@ -185,6 +170,35 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
                                                   {THIN_CODE: thin_rows[inverse][touch]})
     out["issues"] = issues
     return out
+
+
+def _place(units, old_split, old_fold, shares, folds, seed, progress):
+    """Split name and fold (-1 for none) of every usable row, and the thin classes."""
+    if folds is None:
+        names, targets = SPLIT_NAMES, shares
+    else:  # train pool and test; the val share joins train, old val rows count as train
+        names, targets = ("train", "test"), np.array([1.0 - shares[-1], shares[-1]])
+        old_split = np.where(old_split == "val", "train", old_split)
+    fixed = _fixed_splits(units, old_split, names)
+    assigned, thin = _assign(units, targets, fixed, _priority(names), _rng(seed, 0), progress)
+    row_split = np.asarray(names, dtype=object)[assigned[units.row_unit]]
+    # a kept row stays where it was even when new links tie it to a unit of another split (the
+    # audit then shows that leak); only the unit's new rows follow the unit
+    kept = np.isin(old_split, names)
+    row_split[kept] = old_split[kept]
+    row_fold = np.full(len(row_split), -1, dtype=np.int64)
+    if folds is not None:
+        sub = units.subset(assigned == 0)
+        in_pool = assigned[units.row_unit] == 0
+        old_fold = np.where(kept & (old_fold >= 0) & (old_fold < folds), old_fold, -1)
+        sub_fixed = sub.fixed_from_rows(old_fold[in_pool])
+        fold_units, thin_folds = _assign(sub, np.full(folds, 1.0 / folds), sub_fixed,
+                                         range(folds), _rng(seed, 1), progress)
+        thin = thin | thin_folds
+        row_fold[in_pool] = fold_units[sub.row_unit]
+        row_fold = np.where(old_fold >= 0, old_fold, row_fold)
+        row_fold[row_split != "train"] = -1
+    return row_split, row_fold, thin
 
 
 def split_summary(manifest, *, keep_from=None) -> dict:
@@ -436,11 +450,11 @@ class _Units:
         self.main = self.ec[by_count[self.ptr[:-1]]]
 
     @classmethod
-    def from_rows(cls, rows):
+    def from_rows(cls, rows, link):
+        """Units of ``rows`` from ``link`` (any int id per row: equal ids share a unit)."""
         import pandas as pd
 
-        n = len(rows)
-        row_unit = _components(_link_keys(rows), n) if n else np.zeros(0, dtype=np.int64)
+        row_unit = np.unique(link, return_inverse=True)[1].reshape(-1)
         row_class, classes = pd.factorize(rows["label"].fillna("").astype(str), sort=True)
         return cls(row_unit.astype(np.int64), row_class.astype(np.int64), len(classes))
 
@@ -483,12 +497,15 @@ def _assign(units, ratios, fixed, priority, rng, progress):
     # small problems are cheap to solve again from other starting orders; keep the best
     for _ in range(_RESTARTS if free.size <= _RESTART_MAX_UNITS else 1):
         search = _Search(units, ratios, fixed, priority)
-        order = free[np.lexsort((rng.permutation(free.size), -units.size[free]))]
-        one_by_one, rest = order[:_GREEDY_UNITS], order[_GREEDY_UNITS:]
+        key = rng.permutation(free.size)
+        by_size = np.lexsort((key, -units.size[free]))
+        one_by_one, rest = free[by_size[:_GREEDY_UNITS]], by_size[_GREEDY_UNITS:]
         for u in progress(one_by_one.tolist(), total=len(one_by_one), label="split"):
             search.place_best(u)
         if rest.size:
-            search.fill(rest)
+            # in random order, not by size: filled along a cumulative sum, size order would send
+            # the smallest (purest) units of every class to the last split
+            search.fill(free[rest[np.argsort(key[rest])]])
         for _ in range(rounds):
             if not search.improve():
                 break
@@ -569,14 +586,18 @@ class _Search:
 
     # -- construction
     def place_best(self, unit):
-        """Put one unit where the objective grows least."""
-        one = np.array([unit])
-        dots, e, _, _ = self._dots(one)
+        """Put one unit where the objective grows least (the one-unit case of :meth:`_dots`)."""
+        lo, hi = self.u.ptr[unit], self.u.ptr[unit + 1]
+        c, v = self.u.ec[lo:hi], self.u.ev[lo:hi]
         size = self.u.size[unit]
-        grow = self.norm2[unit] + 2 * dots[0] + _SIZE_WEIGHT * (size * size + 2 * size * e)
+        dots = ((self.x[:, c] - np.outer(self.s, self.p[c])) @ v
+                - size * (self.x @ self.p - self.s * (self.p @ self.p)))
+        e = self.s - self.size_target
+        grow = self.norm2[unit] + 2 * dots + _SIZE_WEIGHT * (size * size + 2 * size * e)
         dest = int(np.argmin(np.where(self.active, self.weight * grow, np.inf)))
+        self.x[dest, c] += v
+        self.s[dest] += size
         self.assign[unit] = dest
-        self._add(one, np.array([dest]), +1)
 
     def fill(self, units):
         """Place many small units at once: each class's units share what it still lacks per split."""

@@ -19,7 +19,7 @@ from labelprep.errors import InputError, ParameterError
 from labelprep.manifest import read, read_sidecar
 from labelprep.probe import probe
 from labelprep.scanner import scan
-from test_probe import _png_header_only
+from test_probe import _hand_png, _rgb48_png
 
 
 def _animated_gif() -> bytes:
@@ -51,7 +51,7 @@ CASES = {
     "bad/notes.jpg": (b"pool 7: calm\n", "not-image", "first bytes 70 6f 6f 6c 20 37 3a 20 match no image signature"),
     "bad/cut.jpg": (encode(textured(seed=4))[:700], "truncated", None),
     "bad/crc.png": (_bad_crc_png(), "corrupt", None),
-    "bad/bomb.png": (_png_header_only(50_000, 50_000), "pixel-limit", None),
+    "bad/bomb.png": (_hand_png(50_000, 50_000), "pixel-limit", None),
     "bad/tiny.jpg": (encode(textured((20, 16), seed=5)), "too-small", "20x16, shorter side under 32 px"),
     "bad/png.jpg": (encode(textured(seed=6), "PNG"), "wrong-extension", "named .jpg but the content is png"),
     "bad/strip.jpg": (encode(textured((400, 100), seed=7)), "extreme-aspect", "400x100, 4.0:1, beyond 3:1"),
@@ -59,6 +59,7 @@ CASES = {
     "bad/cmyk.jpg": (encode(textured(seed=8).convert("CMYK")), "unusual-mode", "CMYK colour (4 ink channels)"),
     "bad/deep.png": (encode(Image.fromarray(np.asarray(textured(seed=8).convert("L"), np.uint16) * 257), "PNG"),
                      "unusual-mode", "16-bit grey samples (I;16)"),
+    "bad/rgb48.png": (_rgb48_png(40, 40), "unusual-mode", "16-bit samples, which Pillow reads as 8-bit RGB"),
     "bad/clear.png": (encode(textured(seed=8).convert("RGBA"), "PNG"), "unusual-mode", "alpha channel (RGBA)"),
     "bad/keyed.png": (encode(textured(seed=8).convert("P"), "PNG", transparency=0), "unusual-mode",
                       "palette with a transparent entry"),
@@ -88,6 +89,7 @@ class TestRegistry:
     """The check stage's rules and the code registry agree."""
 
     def test_every_check_code_has_a_rule(self):
+        """Each registered check code has exactly one rule, and no rule is unregistered."""
         assert sorted(RULES) == sorted(codes.codes_of("check"))
 
     def test_codes_are_short_hyphenated_with_one_severity(self):
@@ -102,6 +104,7 @@ class TestRealFiles:
 
     @pytest.mark.parametrize("rel", sorted(CASES))
     def test_expected_code(self, checked, rel):
+        """The file carries its expected code and no other; the reason names the numbers."""
         _, expected, why = CASES[rel]
         row = checked.loc[rel]
         assert codes.parse(row["issues"]) == ([expected] if expected else []), row["fault_detail"]
@@ -109,10 +112,12 @@ class TestRealFiles:
             assert reason(row, expected) == why
 
     def test_symlink_is_reported_not_followed(self, checked):
+        """A symbolic link becomes a row of its own, flagged, never read through."""
         row = checked.loc["bad/link.jpg"]
         assert row["issues"] == "link-skipped" and "not followed" in reason(row, "link-skipped")
 
     def test_no_row_dropped_and_order_kept(self, scanned, checked):
+        """check() only adds codes: same rows, same order."""
         assert checked["path"].tolist() == scanned[1]["path"].tolist()
 
     def test_errors_and_warnings_split_as_registered(self, checked):
@@ -126,6 +131,7 @@ class TestLimits:
     """Limits are options; a re-run replaces the stage's own codes and keeps the others'."""
 
     def test_rerun_with_other_limits(self, scanned):
+        """Looser limits clear the codes they caused; another stage's code stays."""
         m = check(scanned[1])
         m.loc[m["path"] == "ok/photo.jpg", "issues"] = "exact-copy"  # a group-stage code
         again = check(m, min_side=8, max_aspect=5, min_spread=0).set_index("path")
@@ -148,19 +154,23 @@ class TestLimits:
         ({"min_spread": -1.0}, "min_spread must be within 0..255"),
     ])
     def test_bad_values(self, scanned, kwargs, message):
+        """A value outside the accepted range raises ParameterError naming it."""
         with pytest.raises(ParameterError, match=re.escape(message)):
             check(scanned[1], **kwargs)
 
     @pytest.mark.parametrize("kwargs", [{"min_side": "32"}, {"min_side": True}, {"max_aspect": "3"}])
     def test_bad_types(self, scanned, kwargs):
+        """A value of the wrong type raises TypeError."""
         with pytest.raises(TypeError, match="must be"):
             check(scanned[1], **kwargs)
 
     def test_manifest_without_scan_facts(self):
+        """A table lacking the scan's fact columns is refused with the missing names."""
         with pytest.raises(InputError, match="lacks column"):
             check(pd.DataFrame({"path": ["a.jpg"], "label": ["a"]}))
 
     def test_unknown_code_for_reason(self, checked):
+        """reason() explains only the check stage's own codes."""
         with pytest.raises(ParameterError, match="near-copy"):
             reason(checked.iloc[0], "near-copy")
 
@@ -192,12 +202,14 @@ class TestSummary:
     """summary_lines: per code its severity and count, then up to `examples` files with reasons."""
 
     def test_lines(self, checked):
+        """Counts per code, reasons per file, and a tail line for the files not shown."""
         lines = summary_lines(check(checked.reset_index(drop=True)), examples=1)
         assert "too-small        error         1 file" in lines
         assert "    bad/tiny.jpg: 20x16, shorter side under 32 px" in lines
-        assert lines[lines.index("unusual-mode     warning       4 files") + 2] == "    ... and 3 more"
+        assert lines[lines.index("unusual-mode     warning       5 files") + 2] == "    ... and 4 more"
 
     def test_clean(self, checked):
+        """A manifest with no codes says so in one line."""
         clean = check(checked.loc[["ok/photo.jpg"]].reset_index(drop=True))
         assert summary_lines(clean) == ["no issues found"]
 
@@ -206,6 +218,7 @@ class TestDemo:
     """The demo's planted problems are each flagged with the code planted.csv expects."""
 
     def test_every_planted_problem_found(self, demo_tree):
+        """Every planted check-stage problem is found, and no survey photo is flagged."""
         m = check(scan(demo_tree, jobs=1)).set_index("path")
         with open(demo_tree.parent / "planted.csv", encoding="utf-8") as fh:
             planted = list(csv.DictReader(fh))
@@ -230,6 +243,7 @@ class TestCheckCommand:
         return out
 
     def test_default_never_fails(self, runner, manifest_path):
+        """Without --fail-on the command exits 0, prints the codes and writes them back."""
         result = runner.invoke(main, ["check", str(manifest_path)])
         assert result.exit_code == 0, result.output
         assert "too-small        error         1 file" in result.output
@@ -238,6 +252,7 @@ class TestCheckCommand:
 
     @pytest.mark.parametrize("fail_on, code", [("error", 1), ("warning", 1), ("never", 0)])
     def test_fail_on(self, runner, manifest_path, fail_on, code):
+        """--fail-on error and warning exit 1 naming the failing codes; never exits 0."""
         result = runner.invoke(main, ["check", str(manifest_path), "--fail-on", fail_on])
         assert result.exit_code == code
         if code:
@@ -253,6 +268,7 @@ class TestCheckCommand:
         assert result.exit_code == 1 and "has-location (1)" in result.output
 
     def test_limits_recorded_in_sidecar(self, runner, manifest_path):
+        """The limits used go into the sidecar next to the scan's options."""
         result = runner.invoke(main, ["check", str(manifest_path), "--min-side", "8", "--max-aspect", "5",
                                       "-q"])
         assert result.exit_code == 0 and result.output == ""
@@ -264,9 +280,11 @@ class TestCheckCommand:
 
     @pytest.mark.parametrize("args", [["--min-side", "0"], ["--max-aspect", "0.5"], ["--fail-on", "often"]])
     def test_bad_options_exit_2(self, runner, manifest_path, args):
+        """Out-of-range or unknown option values are usage errors (exit 2)."""
         assert runner.invoke(main, ["check", str(manifest_path), *args]).exit_code == 2
 
     def test_not_a_manifest_exit_2(self, runner, tmp_path):
+        """A CSV that is not a manifest is refused with a one-line reason (exit 2)."""
         bad = tmp_path / "x.csv"
         bad.write_text("a,b\n1,2\n")
         result = runner.invoke(main, ["check", str(bad)])

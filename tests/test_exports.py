@@ -220,9 +220,18 @@ class TestExport:
         assert plan_targets(m)["target"].tolist() == ["train/birds_owl/a.png"]
         with pytest.raises(InputError, match=r"label '\.\.' cannot be a folder name"):
             export(m.assign(label=".."), tmp_path / "out", root=root)
-        two = pd.concat([m, m.assign(label="birds_owl", path="a.png")])
+        two = pd.concat([m, m.assign(label="birds_owl", path="b.png")])
         with pytest.raises(InputError, match="would share one folder"):
             plan_targets(two)
+
+    def test_tag_clash_resolved_with_longer_tags(self, tmp_path):
+        """A file whose own name equals another's tagged name forces longer tags; names stay unique."""
+        tag = hashlib.sha256(b"b/x.jpg").hexdigest()[:8]
+        m = pd.DataFrame({"path": ["a/x.jpg", "b/x.jpg", f"c/x~{tag}.jpg"], "label": ["k"] * 3,
+                          "split": ["train"] * 3, "sha256": [""] * 3})
+        plan = plan_targets(m)
+        assert plan["target"].str.casefold().is_unique and plan["renamed"].all()
+        assert f"train/k/x~{hashlib.sha256(b'b/x.jpg').hexdigest()[:16]}.jpg" in set(plan["target"])
 
     def test_progress_wraps_the_loop(self, dataset, tmp_path):
         """The progress callable sees every exported file once."""

@@ -5,6 +5,7 @@ from __future__ import annotations
 import io
 import shutil
 import struct
+import zlib
 from pathlib import Path
 
 import numpy as np
@@ -25,10 +26,17 @@ def _probe_bytes(tmp_path: Path, data: bytes, name: str = "f.bin", **kwargs) -> 
     return probe(path, **kwargs)
 
 
-def _png_header_only(width: int, height: int) -> bytes:
-    """A structurally valid PNG whose IHDR claims width x height, with no pixel data behind it."""
-    ihdr = struct.pack(">IIBBBBB", width, height, 8, 2, 0, 0, 0)  # PNG spec 11.2.2: 8-bit RGB
-    return PNG_SIGNATURE + png_chunk(b"IHDR", ihdr) + png_chunk(b"IDAT", b"") + png_chunk(b"IEND", b"")
+def _hand_png(width: int, height: int, *, bit_depth: int = 8, pixel_data: bytes = b"") -> bytes:
+    """A structurally valid RGB PNG whose IHDR claims width x height; no pixel data by default."""
+    ihdr = struct.pack(">IIBBBBB", width, height, bit_depth, 2, 0, 0, 0)  # PNG spec 11.2.2, type 2 = RGB
+    return PNG_SIGNATURE + png_chunk(b"IHDR", ihdr) + png_chunk(b"IDAT", pixel_data) + png_chunk(b"IEND", b"")
+
+
+def _rgb48_png(width: int, height: int) -> bytes:
+    """A 16-bit-per-sample RGB PNG: rows of filter byte 0 (spec 9.2, None) and big-endian samples."""
+    samples = np.random.default_rng(2).integers(0, 65536, (height, width * 3)).astype(">u2")
+    rows = b"".join(b"\x00" + row.tobytes() for row in samples)
+    return _hand_png(width, height, bit_depth=16, pixel_data=zlib.compress(rows))
 
 
 def _gif_header_only(width: int, height: int) -> bytes:
@@ -70,6 +78,7 @@ class TestBadFiles:
     """Each kind of broken file gets its own fault and a reason."""
 
     def test_zero_bytes(self, tmp_path):
+        """A zero-byte file is empty, not unreadable."""
         assert _probe_bytes(tmp_path, b"")["fault"] == "empty"
 
     def test_random_bytes(self, tmp_path):
@@ -98,9 +107,7 @@ class TestBadFiles:
 
     def test_broken_pixel_data(self, tmp_path):
         """Chunks intact but IDAT is not a zlib stream: the decoder refuses it."""
-        ihdr = struct.pack(">IIBBBBB", 40, 30, 8, 2, 0, 0, 0)
-        data = (PNG_SIGNATURE + png_chunk(b"IHDR", ihdr) + png_chunk(b"IDAT", b"\x00" * 64)
-                + png_chunk(b"IEND", b""))
+        data = _hand_png(40, 30, pixel_data=b"\x00" * 64)
         assert _probe_bytes(tmp_path, data, "x.png")["fault"] == "unreadable"
 
     def test_missing_file_and_folder(self, tmp_path):
@@ -116,7 +123,7 @@ class TestPixelBudget:
         """Pillow docs, Image.MAX_IMAGE_PIXELS: 1024 * 1024 * 1024 // 4 // 3 = 89,478,485."""
         assert defaults.MAX_PIXELS == 1024 * 1024 * 1024 // 4 // 3 == Image.MAX_IMAGE_PIXELS
 
-    @pytest.mark.parametrize("build, name", [(_png_header_only, "x.png"), (_gif_header_only, "x.gif"),
+    @pytest.mark.parametrize("build, name", [(_hand_png, "x.png"), (_gif_header_only, "x.gif"),
                                              (_bmp_header_only, "x.bmp")])
     def test_header_claiming_a_huge_size(self, tmp_path, build, name):
         """Decoding 50000 x 50000 would need gigabytes (a MemoryError is reported as unreadable)."""
@@ -128,7 +135,7 @@ class TestPixelBudget:
 
         The file has no pixel data, so a decode would end in a truncated or unreadable fault.
         """
-        facts = _probe_bytes(tmp_path, _png_header_only(10_000, 10_000), "x.png")
+        facts = _probe_bytes(tmp_path, _hand_png(10_000, 10_000), "x.png")
         assert facts["fault"] == "pixel-limit"
         assert facts["fault_detail"] == "10000x10000 = 100,000,000 pixels, budget 89,478,485"
         assert (facts["width"], facts["height"]) == (10_000, 10_000)
@@ -143,6 +150,7 @@ class TestFacts:
     """Facts the check stage reads: frames, mode, alpha, location, spread, orientation."""
 
     def test_animated_gif(self, tmp_path):
+        """GIF89a animation: every frame is counted."""
         frames = [textured(seed=s).convert("P") for s in range(3)]
         buf = io.BytesIO()
         frames[0].save(buf, "GIF", save_all=True, append_images=frames[1:])
@@ -150,6 +158,7 @@ class TestFacts:
         assert facts["fault"] == "" and facts["frames"] == 3
 
     def test_cmyk_jpeg(self, tmp_path):
+        """A four-channel (Adobe CMYK) JPEG keeps its mode."""
         facts = _probe_bytes(tmp_path, encode(textured().convert("CMYK"), "JPEG"), "c.jpg")
         assert facts["fault"] == "" and facts["mode"] == "CMYK"
 
@@ -160,11 +169,19 @@ class TestFacts:
         assert data[24] == 16  # IHDR bit-depth byte: 8 signature + 8 chunk head + 8 size bytes
         facts = _probe_bytes(tmp_path, data, "d.png")
         assert facts["fault"] == "" and facts["mode"] == "I;16"
-        assert facts["spread"] > 10
+        assert facts["spread"] > 10 and facts["bits"] == 16
+        flat = _probe_bytes(tmp_path, encode(Image.new("L", (96, 64), 255), "PNG"), "flat.png")
+        assert facts["phash"] != flat["phash"]  # not hashed as the white image a clipping conversion gives
+
+    def test_48_bit_rgb_png(self, tmp_path):
+        """Pillow reads 16-bit RGB as 8-bit RGB; the header's bit depth still says 16."""
+        facts = _probe_bytes(tmp_path, _rgb48_png(30, 20), "d.png")
+        assert (facts["fault"], facts["mode"], facts["bits"]) == ("", "RGB", 16)
 
     @pytest.mark.parametrize("mode, kwargs, alpha", [("RGBA", {}, True), ("P", {"transparency": 0}, True),
                                                     ("RGB", {}, False)])
     def test_alpha(self, tmp_path, mode, kwargs, alpha):
+        """An alpha channel or a transparent palette entry is recorded; plain RGB is not."""
         facts = _probe_bytes(tmp_path, encode(textured().convert(mode), "PNG", **kwargs), "a.png")
         assert facts["has_alpha"] is alpha
 
@@ -190,6 +207,7 @@ class TestFacts:
         assert (facts["width"], facts["height"]) == (64, 96)
 
     def test_flat_image_has_no_spread(self, tmp_path):
+        """One flat colour measures a spread of exactly zero."""
         facts = _probe_bytes(tmp_path, encode(Image.new("RGB", (64, 64), (90, 90, 90)), "PNG"), "f.png")
         assert facts["spread"] == 0.0
 

@@ -295,3 +295,22 @@ def test_report_command(dataset, tmp_path):
     summary = json.loads(out["json"].read_text())
     assert summary["seed"] == 7 and summary["files"] == len(m)
     assert len(parse_page(out["html"].read_text()).images) == 6  # root came from the sidecar
+
+
+def test_thumbnail_of_16_bit_grey(tmp_path):
+    """A 16-bit grey image previews at its true brightness (40000 / 65535 of white is about 156),
+    not clipped to white."""
+    Image.fromarray(np.full((30, 40), 40000, dtype=np.uint16)).save(tmp_path / "deep.png")
+    uri = page.thumbnail(tmp_path, "deep.png")
+    with Image.open(io.BytesIO(base64.b64decode(uri.split(",", 1)[1]))) as im:
+        assert abs(float(np.asarray(im.convert("L"), dtype=float).mean()) - 40000 / 257) < 2
+
+
+def test_no_thumbnail_for_faulty_files(dataset, tmp_path):
+    """A member whose scan recorded a decoding fault is listed with a placeholder, not decoded."""
+    root, m = dataset
+    m = m.assign(fault=np.where(m["path"] == "cat/chelsea_small.jpg", "truncated", ""))
+    reports.report(m, html=tmp_path / "r.html", root=root)
+    text = (tmp_path / "r.html").read_text()
+    assert len(parse_page(text).images) == 5
+    assert re.search(r'<div class="blank">no preview</div>\s*<figcaption>cat/chelsea_small.jpg', text)

@@ -104,7 +104,7 @@ def _complete(manifest):
     import pandas as pd
 
     m = manifest.copy()
-    for name in ("label", "split", "issues", "phash"):
+    for name in ("label", "split", "issues", "phash", "fault"):
         m[name] = m[name].fillna("").astype(str) if name in m.columns else ""
     m["dup_group"] = (pd.to_numeric(m["dup_group"]).astype("Int64") if "dup_group" in m.columns
                       else pd.array([pd.NA] * len(m), dtype="Int64"))

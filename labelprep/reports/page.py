@@ -23,8 +23,6 @@ CLUSTERS_WITH_THUMBS = 60  # of those, the first ones get thumbnails
 MEMBERS_PER_STRIP = 16    # files drawn in one cluster's strip
 SPLIT_COLOURS = {"train": "#2f6690", "val": "#c9822b", "test": "#3a7d44"}
 OTHER_COLOUR = "#7a6f9b"
-# a file with one of these codes may not decode (or may be a decompression bomb): no thumbnail
-_NO_PREVIEW = {c for c in codes.codes_of("check") if codes.CODES[c].severity == codes.ERROR}
 
 
 def render(m, summary: dict, *, root=None) -> str:
@@ -88,8 +86,11 @@ def _clusters(m, root) -> tuple[list, int]:
     sub = sub.assign(_other=~sub["keeper"].fillna(False).astype(bool))
     sub = sub.sort_values(["dup_group", "_other", "path"], kind="stable")
     members_of: dict[int, list] = {}
+    # a file the scan could not fully decode (its ``fault``), or one over the pixel budget, gets
+    # no thumbnail: decoding it again would be slow or fail
+    risky = (sub["fault"] != "") | sub["issues"].map(lambda cell: "pixel-limit" in codes.parse(cell))
     for gid, *fields in zip(sub["dup_group"].astype("int64"), sub["path"], sub["label"], sub["split"],
-                            sub["phash"], sub["issues"]):
+                            sub["phash"], risky):
         members_of.setdefault(int(gid), []).append(fields)
     out = []
     for rank, (gid, size, conflict, leak) in enumerate(zip(shown.index, shown["size"], shown["conflict"], shown["leak"])):
@@ -97,9 +98,9 @@ def _clusters(m, root) -> tuple[list, int]:
         keeper_hash = members[0][3]
         with_thumbs = root is not None and rank < CLUSTERS_WITH_THUMBS
         files = []
-        for i, (path, label, split, phash, issues) in enumerate(members):
+        for i, (path, label, split, phash, skip) in enumerate(members):
             draw = with_thumbs and i < MEMBERS_PER_STRIP
-            previewable = draw and not _NO_PREVIEW & set(codes.parse(issues))
+            previewable = draw and not skip
             files.append({"path": path, "label": label, "split": split or "left out", "keeper": i == 0,
                           "distance": hamming(keeper_hash, phash),
                           "thumb": thumbnail(root, path) if previewable else None, "drawn": draw})
@@ -137,6 +138,7 @@ def thumbnail(root, path: str):
             im.draft("RGB", (side, side))  # JPEG: decode at reduced scale, much faster
             im = ImageOps.exif_transpose(im)
             im.thumbnail((side, side))
+            im = _eight_bit(im)
             if im.mode in ("RGBA", "LA", "PA") or (im.mode == "P" and "transparency" in im.info):
                 rgba = im.convert("RGBA")
                 im = Image.new("RGB", rgba.size, "white")
@@ -146,3 +148,18 @@ def thumbnail(root, path: str):
     except Exception:  # noqa: BLE001 - any decoder failure only means "no preview"
         return None
     return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _eight_bit(im):
+    """``im`` with 16-bit or wider samples brought into 0-255, so that converting to RGB does not
+    clip them all to white."""
+    import numpy as np
+    from PIL import Image
+
+    if im.mode.startswith("I;16"):
+        return Image.fromarray((np.asarray(im, dtype=np.float64) / 257).round().astype(np.uint8))
+    if im.mode in ("I", "F"):
+        a = np.asarray(im, dtype=np.float64)
+        span = a.max() - a.min()
+        return Image.fromarray(((a - a.min()) * (255 / span if span else 0)).round().astype(np.uint8))
+    return im

@@ -1,0 +1,130 @@
+"""Pipeline scale: a synthetic manifest of 1,000,000 rows through group -> split -> report.
+
+The manifest has 100 classes of unequal size, 200,000 user groups (each inside one class) and
+planted near-duplicates: pairs whose perceptual hashes differ by 1..6 bits and exact copies
+(same sha256 and hash), some of them across groups. Each stage runs once, in this process, on the
+output of the one before; the script prints each stage's time and the peak resident memory so
+far, the totals against the issue's budget (under 3 minutes, under 4 GB), and two checks that the
+result is right: planted pairs found in one cluster, and no cluster or group spanning splits.
+
+    python benchmarks/pipeline_scale.py                 # 1,000,000 rows (the README figures)
+    python benchmarks/pipeline_scale.py --rows 100000   # a quick look
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import resource
+import tempfile
+import time
+from pathlib import Path
+
+BUDGET_SECONDS = 180.0     # issue 7: group -> split -> report under 3 minutes
+BUDGET_MB = 4096.0         # issue 7: under 4 GB peak memory
+CLASSES = 100
+NEAR_SHARE = 0.01          # share of rows that are a near copy of another row
+EXACT_SHARE = 0.002        # share of rows that are a byte-identical copy of another row
+
+
+def _peak_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def synthetic_manifest(rows: int, groups: int, seed: int = 0):
+    """The synthetic manifest, and the (copy, original) row pairs planted in it."""
+    import numpy as np
+    import pandas as pd
+
+    from labelprep import manifest
+
+    rng = np.random.default_rng(seed)
+    # class sizes fall off like 1/rank^0.5 (a mild long tail); each group lives in one class
+    weights = 1 / np.sqrt(np.arange(1, CLASSES + 1))
+    group_class = rng.choice(CLASSES, size=groups, p=weights / weights.sum())
+    group = rng.integers(0, groups, rows)
+    label = group_class[group]
+    phash = rng.integers(0, 2**63, rows, dtype=np.int64).astype(np.uint64) * 2 + rng.integers(0, 2, rows).astype(np.uint64)
+    digest = rng.integers(0, 2**63, (rows, 4), dtype=np.int64)
+
+    n_near, n_exact = int(rows * NEAR_SHARE), int(rows * EXACT_SHARE)
+    copies = rng.choice(rows, n_near + n_exact, replace=False)
+    originals = rng.integers(0, rows, n_near + n_exact)
+    keep = copies != originals
+    copies, originals = copies[keep], originals[keep]
+    near, exact = copies[: n_near], copies[n_near:]
+    flips = np.zeros(len(near), dtype=np.uint64)
+    for k in range(len(near)):  # 1..6 distinct random bits flipped per near copy
+        bits = rng.choice(64, rng.integers(1, 7), replace=False)
+        flips[k] = np.bitwise_or.reduce(np.left_shift(np.uint64(1), bits.astype(np.uint64)))
+    phash[near] = phash[originals[: len(near)]] ^ flips
+    phash[exact] = phash[originals[len(near):]]
+    digest[exact] = digest[originals[len(near):]]
+    label[copies] = label[originals]  # a copy carries its original's label (no planted conflicts)
+
+    df = pd.DataFrame({
+        "path": [f"class{c:03d}/img{i:07d}.jpg" for i, c in enumerate(label)],
+        "label": [f"class{c:03d}" for c in label],
+        "group": [f"g{g:06d}" for g in group],
+        "bytes": rng.integers(20_000, 4_000_000, rows),
+        "width": np.full(rows, 3000), "height": np.full(rows, 2000),
+        "format": "jpeg",
+        "sha256": [f"{a:016x}{b:016x}{c:016x}{d:016x}" for a, b, c, d in digest.tolist()],
+        "phash": [f"{h:016x}" for h in phash.tolist()],
+        "issues": "",
+        "mtime_ns": np.full(rows, 1_700_000_000_000_000_000), "mode": "RGB", "frames": 1,
+        "has_alpha": False, "has_gps": False, "spread": 40.0, "fault": "", "fault_detail": "",
+    })
+    pairs = list(zip(copies.tolist(), originals.tolist()))
+    return manifest.coerce(df), pairs
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--rows", type=int, default=1_000_000)
+    parser.add_argument("--groups", type=int, default=None, help="user groups (default rows / 5)")
+    args = parser.parse_args(argv)
+    groups = args.groups or args.rows // 5
+
+    from labelprep.clusters import group
+    from labelprep.reports import report
+    from labelprep.splits import split
+
+    print(f"pipeline_scale: {args.rows:,} rows, {CLASSES} classes, {groups:,} groups, "
+          f"{os.cpu_count()} cores, load average {' '.join(f'{v:.1f}' for v in os.getloadavg())}")
+    start = time.perf_counter()
+    m, pairs = synthetic_manifest(args.rows, groups)
+    print(f"{'synthetic manifest (not counted)':<34} {time.perf_counter() - start:8.1f} s "
+          f"{_peak_mb():8.0f} MB peak so far; {len(pairs):,} planted copies")
+
+    out = Path(tempfile.mkdtemp(prefix="labelprep-scale-"))
+    stages = [("group", lambda df: group(df)), ("split", lambda df: split(df, seed=0)),
+              ("report (JSON + HTML)", lambda df: report(df, json=out / "report.json",
+                                                         html=out / "report.html") and df)]
+    total = 0.0
+    for name, run in stages:
+        start = time.perf_counter()
+        m = run(m)
+        took = time.perf_counter() - start
+        total += took
+        print(f"{name:<34} {took:8.1f} s {_peak_mb():8.0f} MB peak so far")
+    peak = _peak_mb()
+    print(f"{'total group -> split -> report':<34} {total:8.1f} s {peak:8.0f} MB peak")
+    print(f"  budget {BUDGET_SECONDS:.0f} s: {total / BUDGET_SECONDS:5.2f} of it used, "
+          f"{'met' if total < BUDGET_SECONDS else 'MISSED'}")
+    print(f"  budget {BUDGET_MB:.0f} MB: {peak / BUDGET_MB:5.2f} of it used, "
+          f"{'met' if peak < BUDGET_MB else 'MISSED'}")
+
+    dup = m["dup_group"].to_numpy(dtype="float64", na_value=float("nan"))
+    found = sum(1 for a, b in pairs if dup[a] == dup[b])
+    print(f"  planted copies found in their original's cluster: {found:,} of {len(pairs):,}")
+    placed = m[m["split"] != ""]
+    crossing = {col: int((placed.groupby(col)["split"].nunique() > 1).sum())
+                for col in ("dup_group", "group")}
+    print(f"  clusters spanning splits: {crossing['dup_group']}, groups spanning splits: "
+          f"{crossing['group']} (both must be 0)")
+    print(f"  report files: {', '.join(f'{p.name} {p.stat().st_size / 1e6:.1f} MB' for p in sorted(out.iterdir()))}")
+
+
+if __name__ == "__main__":
+    main()
