@@ -129,35 +129,41 @@ def _child(method: str, root: str, out: str, jobs: str) -> None:
     print(json.dumps({"main_mb": own, "worker_mb": workers}))
 
 
+def _cpu_of_children() -> float:
+    usage = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return usage.ru_utime + usage.ru_stime
+
+
 def _run(method: str, root: Path, out: Path, jobs: int):
-    """Wall time of one fresh process running ``method``, and its peak memory."""
+    """One fresh process running ``method``: (wall seconds, CPU seconds with its workers, memory)."""
     cmd = [sys.executable, __file__, "--child", method, str(root), str(out), str(jobs)]
+    cpu = _cpu_of_children()
     start = time.perf_counter()
     done = subprocess.run(cmd, capture_output=True, text=True)
     elapsed = time.perf_counter() - start
     if done.returncode != 0:
         raise SystemExit(f"{method} on {root} failed:\n{done.stderr}")
-    return elapsed, json.loads(done.stdout.strip().splitlines()[-1])
+    return elapsed, _cpu_of_children() - cpu, json.loads(done.stdout.strip().splitlines()[-1])
 
 
 def _timed(method: str, root: Path, empty: Path, out: Path, jobs: int, repeat: int, *, rescan=False):
-    """Best of ``repeat`` on the tree and on the empty tree: (seconds per file, memory of the tree run).
+    """Best of ``repeat`` runs on the tree and on the empty tree, per file of the tree.
 
-    For a rescan the manifest of the previous run is left in place; otherwise it is removed first.
+    Returns ``(wall seconds, CPU seconds, memory of the tree run)``. For a rescan the manifest of
+    the previous run is left in place; otherwise it is removed first.
     """
     n = sum(1 for p in root.rglob("*") if p.is_file())
-    best, best_empty, memory = float("inf"), float("inf"), None
+    best = {root: (float("inf"), float("inf")), empty: (float("inf"), float("inf"))}
+    memory = None
     empty_out = out.with_name("empty-" + out.name)
     for _ in range(repeat):
         for tree, target in ((root, out), (empty, empty_out)):
             if not rescan:
                 target.unlink(missing_ok=True)
-            elapsed, mem = _run(method, tree, target, jobs)
-            if tree is root:
-                best, memory = min(best, elapsed), mem
-            else:
-                best_empty = min(best_empty, elapsed)
-    return (best - best_empty) / n, memory
+            elapsed, cpu, mem = _run(method, tree, target, jobs)
+            best[tree] = (min(best[tree][0], elapsed), min(best[tree][1], cpu))
+            memory = mem if tree is root else memory
+    return (best[root][0] - best[empty][0]) / n, (best[root][1] - best[empty][1]) / n, memory
 
 
 # ------------------------------------------------------------------ the report
@@ -174,17 +180,19 @@ def _table(title: str, root: Path, work: Path, jobs: int, repeat: int, cores: in
         ("(e) labelprep rescan, unchanged tree", "scan", {"rescan": True}),
     ]
     print(f"\n{title}")
-    print(f"{'method':<44} {'ms/file':>9} {'vs (a)':>9} {'peak RSS MB main / worker':>27}")
+    print(f"{'method':<44} {'ms/file':>9} {'vs (a)':>8} {'CPU ms/file':>12} "
+          f"{'peak RSS MB main / worker':>27}")
     per_file = {}
     for name, method, opts in rows:
         n_jobs = opts.get("jobs", jobs)
         # the rescan is cheap and its signal small next to process start-up: more repeats
         reps = repeat * 3 if opts.get("rescan") else repeat
-        seconds, mem = _timed(method, root, empty, out, n_jobs, reps, rescan=opts.get("rescan", False))
+        seconds, cpu, mem = _timed(method, root, empty, out, n_jobs, reps, rescan=opts.get("rescan", False))
         key = name[1]
         per_file[key] = seconds
         ratio = per_file["a"] / seconds if seconds > 0 else float("inf")
-        print(f"{name:<44} {seconds * 1000:9.3f} {ratio:8.1f}x {mem['main_mb']:13.0f} / {mem['worker_mb']:<10.0f}")
+        print(f"{name:<44} {seconds * 1000:9.3f} {ratio:7.1f}x {cpu * 1000:12.3f} "
+              f"{mem['main_mb']:13.0f} / {mem['worker_mb']:<10.0f}")
     if targets:
         a, b, d, e = per_file["a"], per_file["b"], per_file["d"], per_file["e"]
         checks = [
@@ -207,8 +215,8 @@ def _memory_flat(sizes, work: Path, jobs: int):
         root = work / f"small{n}"
         _make_tree(root, n, (160, 120), (("JPEG", "jpg"),), jobs)
         out = work / f"small{n}.csv"
-        _, mem = _timed("scan", root, empty, out, jobs, 1)
-        rescan, mem_e = _timed("scan", root, empty, out, jobs, 3, rescan=True)
+        _, _, mem = _timed("scan", root, empty, out, jobs, 1)
+        rescan, _, mem_e = _timed("scan", root, empty, out, jobs, 3, rescan=True)
         print(f"{n:>8} {mem['main_mb']:11.0f} / {mem['worker_mb']:<10.0f} {rescan * 1000:16.4f} "
               f"{mem_e['main_mb']:16.0f}")
         shutil.rmtree(root)

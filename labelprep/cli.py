@@ -269,8 +269,9 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
               help="Write a self-contained HTML report with thumbnails.")
 @click.option("--root", type=_existing_dir, default=None,
               help="Folder the manifest's paths are relative to (default: from the manifest's sidecar).")
+@_force
 @_quiet
-def report(manifest_path, json_path, md_path, html_path, root, quiet):
+def report(manifest_path, json_path, md_path, html_path, root, force, quiet):
     """Class balance per split, issues and duplicate clusters of MANIFEST."""
     from .manifest import read_sidecar
     from .reports import report as run, terminal_table
@@ -278,7 +279,7 @@ def report(manifest_path, json_path, md_path, html_path, root, quiet):
     meta = read_sidecar(manifest_path)
     root = root or _root_from(meta)
     summary = run(_read(manifest_path), json=json_path, html=html_path, markdown=md_path,
-                  root=root, meta=meta)
+                  root=root, meta=meta, force=force)
     _say(quiet, terminal_table(summary))
 
 

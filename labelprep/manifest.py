@@ -253,6 +253,10 @@ def atomic_path(path) -> Iterator[str]:
         raise InputError(f"cannot write {path}: {exc.strerror}") from exc
     os.close(fd)
     try:
+        # mkstemp makes the file private (0600); outputs get the usual mode the umask allows
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
         yield tmp
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())

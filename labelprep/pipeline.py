@@ -47,7 +47,7 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
     out.mkdir(parents=True, exist_ok=True)
     target = out / MANIFEST_NAME
     manifest.guard_output(target, force=force)
-    for name in (REPORT_JSON, REPORT_HTML):
+    for name in (REPORT_JSON, REPORT_HTML):  # refuse before the work, not after it
         manifest.guard_output(out / name, force=force, marker=b"labelprep")
     previous = _previous(target)
     if isinstance(keep_from, (str, Path)):
@@ -70,7 +70,7 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
             "stages": {"prepare": {"options": options, "scan": scan_facts}}}
     manifest.write(m, target, meta=meta, force=True)
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=root,
-                     meta=manifest.read_sidecar(target))
+                     meta=manifest.read_sidecar(target), force=force)
     return m, summary
 
 

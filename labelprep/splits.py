@@ -51,6 +51,7 @@ import numpy as np
 
 from . import codes
 from .errors import ParameterError
+from .progress import resolve
 
 SPLIT_NAMES = ("train", "val", "test")
 THIN_CODE = "thin-class"
@@ -142,7 +143,7 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     linked = _components(_link_keys(frame), len(frame))
     units = _Units.from_rows(rows, linked[usable])
     old_split, old_fold = _old_assignment(rows, keep_from)
-    progress = progress or (lambda iterable, **_: iterable)
+    progress = resolve(progress)
 
     split_of_row = np.full(len(frame), "", dtype=object)
     fold_of_row = np.full(len(frame), -1, dtype=np.int64)
@@ -156,8 +157,7 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     inverse[order] = np.arange(len(order))
     out["split"] = pd.Series(split_of_row[inverse], index=out.index, dtype=object).astype(str)
     fold_values = fold_of_row[inverse]
-    out["fold"] = pd.array(np.where(fold_values >= 0, fold_values, 0), dtype="Int64")
-    out.loc[fold_values < 0, "fold"] = pd.NA
+    out["fold"] = pd.Series(fold_values, index=out.index).where(fold_values >= 0).astype("Int64")
     thin_rows = np.zeros(len(frame), dtype=bool)
     thin_rows[usable] = thin[units.row_class]
     issues = (out["issues"].fillna("").astype(str) if "issues" in out.columns

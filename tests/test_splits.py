@@ -357,13 +357,20 @@ ratio_choices = st.sampled_from([(0.8, 0.1, 0.1), (0.7, 0.15, 0.15), (0.9, 0.1),
 
 class TestProperties:
     @settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-    @given(m=manifests(), ratios=ratio_choices, seed=st.integers(0, 2**31))
-    def test_units_never_cross_and_same_seed_same_output(self, m, ratios, seed):
-        """No group or cluster crosses splits; the same seed gives the same bytes."""
-        names = ("train", "val", "test") if len(ratios) == 3 else ("train", "test")
-        out = split(m, ratios=ratios, seed=seed)
+    @given(m=manifests(), ratios=ratio_choices, seed=st.integers(0, 2**31),
+           folds=st.sampled_from([None, None, 2, 3]))
+    def test_units_never_cross_and_same_seed_same_output(self, m, ratios, seed, folds):
+        """No group or cluster crosses splits or folds; the same seed gives the same bytes."""
+        names = ("train", "val", "test") if len(ratios) == 3 and folds is None else ("train", "test")
+        out = split(m, ratios=ratios, seed=seed, folds=folds)
         assert_valid(m, out, names)
-        assert to_csv_bytes(out) == to_csv_bytes(split(m, ratios=ratios, seed=seed))
+        if folds is not None:
+            train = (out["split"] == "train").to_numpy()
+            assert out["fold"][train].between(0, folds - 1).all()
+            assert out["fold"][~train].isna().all()
+            per_unit = out[train].assign(unit=np.asarray(units_of(m))[train]).groupby("unit")["fold"]
+            assert (per_unit.nunique() == 1).all()
+        assert to_csv_bytes(out) == to_csv_bytes(split(m, ratios=ratios, seed=seed, folds=folds))
 
     @settings(max_examples=30, deadline=None)
     @given(sizes=st.lists(st.integers(1, 6), min_size=20, max_size=120),

@@ -17,7 +17,8 @@ from ..errors import InputError, ParameterError
 FORMAT_TAG = "labelprep-report/1"
 
 
-def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=None) -> dict:
+def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=None,
+           force: bool = False) -> dict:
     """Summarise ``manifest`` and write the report files that are asked for.
 
     Parameters
@@ -33,6 +34,9 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     meta : dict, optional
         The manifest's sidecar (:func:`labelprep.manifest.read_sidecar`): the seed, root and stage
         options it records are shown.
+    force : bool
+        Replace output files that labelprep did not write (reports are recognised by the word
+        "labelprep" near their start).
 
     Returns
     -------
@@ -62,9 +66,13 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     if "path" not in manifest.columns:
         raise InputError("the manifest has no 'path' column")
 
+    from ..manifest import guard_output, write_text
+
+    for target in (json, markdown, html):
+        if target is not None:
+            guard_output(target, force=force, marker=b"labelprep")
     m = _complete(manifest)
     summary = _summary(m, meta or {})
-    from ..manifest import write_text
 
     if json is not None:
         write_text(json, to_json(summary))
