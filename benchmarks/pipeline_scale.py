@@ -44,22 +44,25 @@ def synthetic_manifest(rows: int, groups: int, seed: int = 0):
     group_class = rng.choice(CLASSES, size=groups, p=weights / weights.sum())
     group = rng.integers(0, groups, rows)
     label = group_class[group]
-    phash = rng.integers(0, 2**63, rows, dtype=np.int64).astype(np.uint64) * 2 + rng.integers(0, 2, rows).astype(np.uint64)
+    # every hash column a scan writes (hashing.fingerprint): whole image, two centred boxes, mirror
+    hashes = {name: rng.integers(0, 2**64, rows, dtype=np.uint64)
+              for name in ("phash", "phash_c80", "phash_c70", "phash_mirror")}
     digest = rng.integers(0, 2**63, (rows, 4), dtype=np.int64)
 
     n_near, n_exact = int(rows * NEAR_SHARE), int(rows * EXACT_SHARE)
-    copies = rng.choice(rows, n_near + n_exact, replace=False)
-    originals = rng.integers(0, rows, n_near + n_exact)
-    keep = copies != originals
-    copies, originals = copies[keep], originals[keep]
-    near, exact = copies[: n_near], copies[n_near:]
-    flips = np.zeros(len(near), dtype=np.uint64)
-    for k in range(len(near)):  # 1..6 distinct random bits flipped per near copy
-        bits = rng.choice(64, rng.integers(1, 7), replace=False)
-        flips[k] = np.bitwise_or.reduce(np.left_shift(np.uint64(1), bits.astype(np.uint64)))
-    phash[near] = phash[originals[: len(near)]] ^ flips
-    phash[exact] = phash[originals[len(near):]]
-    digest[exact] = digest[originals[len(near):]]
+    shuffled = rng.permutation(rows)
+    copies = shuffled[: n_near + n_exact]
+    originals = rng.choice(shuffled[n_near + n_exact:], n_near + n_exact)  # originals are no copies
+    near, exact = copies[:n_near], copies[n_near:]
+    for values in hashes.values():
+        # 1..6 distinct random bits flipped per near copy
+        flips = np.zeros(n_near, dtype=np.uint64)
+        for k in range(n_near):
+            bits = rng.choice(64, rng.integers(1, 7), replace=False).astype(np.uint64)
+            flips[k] = np.bitwise_or.reduce(np.left_shift(np.uint64(1), bits))
+        values[near] = values[originals[:n_near]] ^ flips
+        values[exact] = values[originals[n_near:]]
+    digest[exact] = digest[originals[n_near:]]
     label[copies] = label[originals]  # a copy carries its original's label (no planted conflicts)
 
     df = pd.DataFrame({
@@ -70,7 +73,8 @@ def synthetic_manifest(rows: int, groups: int, seed: int = 0):
         "width": np.full(rows, 3000), "height": np.full(rows, 2000),
         "format": "jpeg",
         "sha256": [f"{a:016x}{b:016x}{c:016x}{d:016x}" for a, b, c, d in digest.tolist()],
-        "phash": [f"{h:016x}" for h in phash.tolist()],
+        **{name: [f"{h:016x}" for h in values.tolist()] for name, values in hashes.items()},
+        "detail": rng.uniform(0.1, 0.5, rows).round(4),  # photos: well above the low-detail limit
         "issues": "",
         "mtime_ns": np.full(rows, 1_700_000_000_000_000_000), "mode": "RGB", "frames": 1,
         "has_alpha": False, "has_gps": False, "spread": 40.0, "fault": "", "fault_detail": "",
@@ -98,13 +102,15 @@ def main(argv=None):
           f"{_peak_mb():8.0f} MB peak so far; {len(pairs):,} planted copies")
 
     out = Path(tempfile.mkdtemp(prefix="labelprep-scale-"))
-    stages = [("group", lambda df: group(df)), ("split", lambda df: split(df, seed=0)),
-              ("report (JSON + HTML)", lambda df: report(df, json=out / "report.json",
-                                                         html=out / "report.html") and df)]
     total = 0.0
-    for name, run in stages:
+    for name in ("group", "split", "report (JSON + HTML)"):
         start = time.perf_counter()
-        m = run(m)
+        if name == "group":
+            m = group(m)
+        elif name == "split":
+            m = split(m, seed=0)
+        else:
+            report(m, json=out / "report.json", html=out / "report.html")
         took = time.perf_counter() - start
         total += took
         print(f"{name:<34} {took:8.1f} s {_peak_mb():8.0f} MB peak so far")

@@ -224,7 +224,7 @@ def _memory_flat(sizes, work: Path, jobs: int):
 
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--n", type=int, default=200, help="photo-like JPEGs (default 200)")
+    parser.add_argument("--n", type=int, default=300, help="photo-like JPEGs (default 300)")
     parser.add_argument("--size", default="3000x2000", help="their size (default 3000x2000)")
     parser.add_argument("--mixed", type=int, default=60, help="files in the mixed-format set (0: none)")
     parser.add_argument("--mixed-size", default="1500x1000", help="their size (default 1500x1000)")

@@ -81,18 +81,18 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
     frame = frame[frame["_split"] != ""].sort_values("path", kind="stable").reset_index(drop=True)
     pairs = _leaking_pairs(frame, max_distance)
     groups = _leaking_groups(frame)
-    in_pairs = set(pairs["a"]).union(pairs["b"])
-    in_groups = {p for g in groups for paths in g["paths"].values() for p in paths}
+    path, label, split = (frame[c].to_numpy(dtype=object) for c in ("path", "label", "_split"))
+    a, b = pairs["a"].to_numpy(), pairs["b"].to_numpy()
     near = [
-        {"path_a": frame.at[a, "path"], "path_b": frame.at[b, "path"],
-         "label_a": frame.at[a, "label"], "label_b": frame.at[b, "label"],
-         "split_a": frame.at[a, "_split"], "split_b": frame.at[b, "_split"],
+        {"path_a": pa, "path_b": pb, "label_a": la, "label_b": lb, "split_a": sa, "split_b": sb,
          "distance": int(d), "exact": bool(x)}
-        for a, b, d, x in zip(pairs["a"], pairs["b"], pairs["distance"], pairs["exact"])
+        for pa, pb, la, lb, sa, sb, d, x in zip(path[a], path[b], label[a], label[b], split[a],
+                                                split[b], pairs["distance"], pairs["exact"])
     ]
+    in_groups = {p for g in groups for paths in g["paths"].values() for p in paths}
     return {"split_column": column, "max_distance": max_distance, "rows": int(len(frame)),
             "near_leaks": near, "group_leaks": groups,
-            "leaking_files": len({frame.at[i, "path"] for i in in_pairs} | in_groups),
+            "leaking_files": len(set(path[a]) | set(path[b]) | in_groups),
             "balance": by_split(manifest, split_column=column)}
 
 
@@ -221,10 +221,15 @@ def _leaking_groups(frame) -> list[dict]:
     grouped = grouped[grouped["group"] != ""]
     spread = grouped.groupby("group")["_split"].nunique()
     leaking = grouped[grouped["group"].isin(spread.index[spread > 1])]
-    out = []
-    for name, rows in leaking.groupby("group", sort=True):
-        names = [s for s in SPLIT_ORDER if (rows["_split"] == s).any()]
-        names += sorted(set(rows["_split"]) - set(SPLIT_ORDER))
-        paths = {s: sorted(rows.loc[rows["_split"] == s, "path"]) for s in names}
-        out.append({"group": name, "splits": {s: len(p) for s, p in paths.items()}, "paths": paths})
+    rank = {name: i for i, name in enumerate(SPLIT_ORDER)}
+    leaking = leaking.assign(_rank=leaking["_split"].map(rank).fillna(len(rank)))
+    leaking = leaking.sort_values(["group", "_rank", "_split", "path"], kind="stable")
+    out: list[dict] = []
+    # one pass over the sorted rows (a pandas operation per group is far slower with many groups)
+    for group, split, path in zip(leaking["group"], leaking["_split"], leaking["path"]):
+        if not out or out[-1]["group"] != group:
+            out.append({"group": group, "splits": {}, "paths": {}})
+        entry = out[-1]
+        entry["paths"].setdefault(split, []).append(path)
+        entry["splits"][split] = entry["splits"].get(split, 0) + 1
     return out

@@ -14,8 +14,9 @@ from . import codes, defaults
 from .errors import InputError, ParameterError
 
 # probe faults that have a code of their own (see RULES); any other fault (a decoder error, a
-# timeout) is reported as unreadable, so no failed file can come out clean
-_OWN_CODE_FAULTS = ("empty", "not-image", "truncated", "corrupt", "pixel-limit", "symlink")
+# damaged header) is reported as unreadable, so no failed file can come out clean
+_OWN_CODE_FAULTS = ("empty", "not-image", "truncated", "corrupt", "pixel-limit", "symlink", "timeout",
+                    "bad-name")
 # the modes every loader handles as they are; anything else is unusual-mode
 _PLAIN_MODES = frozenset({"RGB", "L", "P"})
 _MODE_NOTES = {"CMYK": "CMYK colour (4 ink channels)", "I": "32-bit integer samples (I)",
@@ -137,6 +138,8 @@ RULES: dict[str, _Rule] = {
     "corrupt": _fault_rule("corrupt"),
     "pixel-limit": _Rule(_pixel_limit, _why_pixel_limit),
     "link-skipped": _fault_rule("symlink"),
+    "timed-out": _fault_rule("timeout"),
+    "undecodable-name": _fault_rule("bad-name"),
     "too-small": _Rule(_too_small, lambda row, limits:
                        f"{_size(row)}, shorter side under {limits['min_side']} px"),
     "no-label": _Rule(_no_label, lambda row, limits: "no class label: outside every class folder and label table row"),

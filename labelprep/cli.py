@@ -218,15 +218,18 @@ def check(manifest_path, fail_on, quiet, **limits):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
 @GROUP_OPTIONS
+@click.option("--flips", is_flag=True,
+              help="Also match left-right mirrored copies (off by default: some labels, such as "
+                   "left/right signs, change when mirrored).")
 @_quiet
-def group(manifest_path, max_distance, keep_conflicts, quiet):
+def group(manifest_path, max_distance, keep_conflicts, flips, quiet):
     """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""
     from .clusters import group as run
 
     m = run(_read(manifest_path), max_distance=max_distance, keep_conflicts=keep_conflicts,
-            progress=_progress(quiet))
+            flips=flips, progress=_progress(quiet))
     _write_back(m, manifest_path, "group", {"max_distance": max_distance,
-                                            "keep_conflicts": keep_conflicts})
+                                            "keep_conflicts": keep_conflicts, "flips": flips})
     in_clusters = int(m["dup_group"].notna().sum())
     _say(quiet, f"{m['dup_group'].nunique()} near-duplicate clusters holding {in_clusters} files")
 

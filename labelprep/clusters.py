@@ -2,18 +2,20 @@
 
 Two rows are linked when their files are byte-identical (same ``sha256``) or when any of the
 perceptual hashes of one (:data:`labelprep.hashing.HASH_COLUMNS`: whole image and two centred
-boxes) is within ``max_distance`` bits of any of the other's. Clusters are the connected
-components of those links (union-find), so a chain of copies stays together. A link involving a
-low-detail image (``detail`` below :data:`LOW_DETAIL`) must be within :data:`LOW_DETAIL_DISTANCE`
-bits instead: smooth images have strongly correlated hash bits, and distinct ones sit a few bits
-apart (on scikit-learn's digits upsampled to 64x64, plain pHash at 8 bits links 45% of them).
+boxes) is within ``max_distance`` bits of any of the other's. Each candidate pair is verified
+(:func:`_verified`): a match between the same box of both images must also agree in the centre
+box, and a link involving a low-detail image (``detail`` below :data:`LOW_DETAIL`) needs the
+whole-image hashes within :data:`LOW_DETAIL_DISTANCE` bits: smooth images have strongly correlated hash bits, and
+distinct ones sit a few bits apart (on scikit-learn's digits upsampled to 64x64, plain pHash at
+8 bits links 45% of them). Clusters are the connected components of the links (union-find), so
+a chain of copies stays together.
 """
 
 from __future__ import annotations
 
 from . import codes
 from .errors import ParameterError
-from .hashing import HASH_COLUMNS, MIRROR_COLUMN
+from .hashing import HASH_COLUMNS, INNER_COLUMN, MIRROR_COLUMN
 
 DEFAULT_MAX_DISTANCE = 8
 """Default radius in bits: chosen with benchmarks/dup_accuracy.py (see DEVELOPERS.md)."""
@@ -24,7 +26,9 @@ upsampled digits score at most 0.034, the bundled photographs and their edited c
 0.065."""
 
 LOW_DETAIL_DISTANCE = 2
-"""Radius for links that involve a low-detail image (at most ``max_distance``)."""
+"""Radius on the whole-image hash for links that involve a low-detail image (at most
+``max_distance``); their box hashes are not used, since cropping a smooth image mostly keeps
+its background."""
 
 _STAGE = "group"
 
@@ -152,7 +156,7 @@ def _same_value_links(values):
 
 
 def _near_links(rows, max_distance, flips, progress):
-    """Links (2, k) between rows with hashes within the radius (low-detail rows: a smaller one)."""
+    """Links (2, k) between rows with near hashes, each candidate pair verified (see _verified)."""
     import numpy as np
 
     from .neighbors import radius_pairs
@@ -160,38 +164,60 @@ def _near_links(rows, max_distance, flips, progress):
     columns = [c for c in HASH_COLUMNS if c in rows.columns]
     if flips and MIRROR_COLUMN in rows.columns:
         columns.append(MIRROR_COLUMN)
-    owners, values = [], []
-    for column in columns:
+    n = len(rows)
+    table = np.zeros((n, len(columns)), dtype=np.uint64)
+    present = np.zeros((n, len(columns)), dtype=bool)
+    for k, column in enumerate(columns):
         cells = _text(rows, column)
-        has = np.flatnonzero(cells != "")
-        owners.append(has)
-        values.append(np.array([int(cells[k], 16) for k in has], dtype=np.uint64))
-    owner = np.concatenate(owners) if owners else np.zeros(0, dtype=np.int64)
-    value = np.concatenate(values) if values else np.zeros(0, dtype=np.uint64)
+        present[:, k] = cells != ""
+        table[present[:, k], k] = [int(cells[r], 16) for r in np.flatnonzero(present[:, k])]
+    owner = np.nonzero(present)[0]
+    values = table[present]
+    # each distinct value is searched once; rows sharing one are joined to its first owner
+    uniques, first, inverse = np.unique(values, return_index=True, return_inverse=True)
+    i, j, _ = radius_pairs(uniques, max_distance, progress=progress)
+    pairs = np.concatenate([np.vstack([owner, owner[first[inverse]]]),
+                            np.vstack([owner[first[i]], owner[first[j]]])], axis=1)
+    pairs = np.unique(np.sort(pairs, axis=0), axis=1)
+    pairs = pairs[:, pairs[0] != pairs[1]]
     if "detail" in rows.columns:
         # unknown detail (a manifest from elsewhere) counts as detailed: plain pHash behaviour
-        detailed = rows["detail"].fillna(1.0).to_numpy(dtype=float)[owner] >= LOW_DETAIL
+        low = rows["detail"].astype("Float64").fillna(1.0).to_numpy(dtype=float) < LOW_DETAIL
     else:
-        detailed = np.ones(len(owner), dtype=bool)
-    low_radius = min(max_distance, LOW_DETAIL_DISTANCE)
-    # every hash at the low-detail radius, then only detailed images' hashes at the full one
-    passes = [(np.ones(len(owner), dtype=bool), low_radius), (detailed, max_distance)]
-    if progress is not None:
-        passes = progress(passes, total=len(passes), label="near-duplicate search")
-    links = [np.zeros((2, 0), dtype=np.int64)]
-    for mask, radius in passes:
-        links.append(_value_links(owner[mask], value[mask], radius, radius_pairs))
-    return np.concatenate(links, axis=1)
+        low = np.zeros(n, dtype=bool)
+    return pairs[:, _verified(table, present, pairs, columns, max_distance, low)]
 
 
-def _value_links(owner, value, radius, radius_pairs):
-    """Links between owners of hash values within ``radius``, searching each value once."""
+def _verified(table, present, pairs, columns, max_distance, low):
+    """Which candidate pairs (2, k) of rows are near copies.
+
+    Among the distances between every hash of one row and every hash of the other, one must be
+    within ``max_distance``. A match between the same box of both (whole image against whole
+    image, say) counts only if their innermost boxes are also within twice ``max_distance``:
+    the pictures must agree in the centre, not only in a shared corner (on textures with a
+    caption pasted in a corner, the caption alone brings unrelated images within 6 bits). A pair
+    with a low-detail row needs its whole-image hashes within :data:`LOW_DETAIL_DISTANCE`.
+    """
     import numpy as np
 
-    uniques, first, inverse = np.unique(value, return_index=True, return_inverse=True)
-    same = np.vstack([owner, owner[first[inverse]]])  # owners sharing a value, joined to the first
-    i, j, _ = radius_pairs(uniques, radius)
-    return np.concatenate([same, np.vstack([owner[first[i]], owner[first[j]]])], axis=1)
+    a, b = pairs
+    k = len(columns)
+    dist = np.bitwise_count(table[a][:, :, None] ^ table[b][:, None, :]).astype(np.int16)
+    dist[~(present[a][:, :, None] & present[b][:, None, :])] = 65
+    same_box = np.eye(k, dtype=bool)
+    best_same = dist[:, same_box].min(axis=1, initial=65)
+    best_cross = dist[:, ~same_box].min(axis=1, initial=65)
+    if INNER_COLUMN in columns:
+        inner = columns.index(INNER_COLUMN)
+        centre_agrees = dist[:, inner, inner] <= 2 * max_distance
+    else:
+        centre_agrees = np.ones(len(a), dtype=bool)
+    detailed = (best_cross <= max_distance) | ((best_same <= max_distance) & centre_agrees)
+    whole = columns.index("phash") if "phash" in columns else None
+    if whole is None:
+        return detailed & ~(low[a] | low[b])
+    smooth = dist[:, whole, whole] <= min(max_distance, LOW_DETAIL_DISTANCE)
+    return np.where(low[a] | low[b], smooth, detailed)
 
 
 def _components(n, links):

@@ -31,6 +31,8 @@ _CODE_LIST = [
     IssueCode("too-small", ERROR, "check", "the shorter side is below the minimum side length"),
     IssueCode("no-label", ERROR, "check", "the file has no class label"),
     IssueCode("link-skipped", ERROR, "check", "a symbolic link; links are not followed, so it is not indexed"),
+    IssueCode("timed-out", ERROR, "check", "reading and decoding the file took longer than the per-file time limit; given up"),
+    IssueCode("undecodable-name", ERROR, "check", "the file or folder name is not valid UTF-8; listed with \\x escapes, not read (rename it to index it)"),
     IssueCode("wrong-extension", WARNING, "check", "the file name's extension names another format than its content"),
     IssueCode("extreme-aspect", WARNING, "check", "one side is many times the other (strip, banner, panorama); resizing to a square distorts it"),
     IssueCode("multi-frame", WARNING, "check", "an animation or multi-page file; loaders read only its first frame"),
@@ -38,7 +40,7 @@ _CODE_LIST = [
     IssueCode("near-blank", WARNING, "check", "almost one flat colour (luminance spread under the limit): blank, lens cap, failed capture"),
     IssueCode("has-location", WARNING, "check", "EXIF GPS position present: a privacy risk if the data set is shared"),
     IssueCode("exact-copy", WARNING, "group", "byte-identical to another file"),
-    IssueCode("near-copy", WARNING, "group", "a near-duplicate of another file (perceptual hash within the radius)"),
+    IssueCode("near-copy", WARNING, "group", "looks like another file that is not byte-identical to it: perceptual hashes of the whole image or of a centred box within the radius"),
     IssueCode("label-conflict", ERROR, "group", "its near-duplicate cluster holds more than one label"),
     IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
 ]

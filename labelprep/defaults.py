@@ -11,3 +11,7 @@ MAX_ASPECT = 3.0
 # luminance std (0-255) on a 64x64 thumbnail: flat frames with sensor noise measure under 1, the
 # lowest photo bundled with scikit-image (microaneurysms.png) 9.8; tests/test_checks.py pins both
 MIN_SPREAD = 2.0
+# seconds one file may take to read and decode before it is given up as "timeout": a budget-sized
+# (89 MP) PNG decodes in well under 10 s on one core of this project's 2-core machine, so only a
+# file that makes the decoder spin reaches it
+PROBE_SECONDS = 60.0

@@ -25,6 +25,9 @@ import numpy as np
 HASH_COLUMNS = ("phash", "phash_c80", "phash_c70")
 """The hashes compared to find near copies (any of one image against any of another)."""
 
+INNER_COLUMN = "phash_c70"
+"""The innermost box: two images matched on another box must also agree here."""
+
 MIRROR_COLUMN = "phash_mirror"
 
 # box kept around the centre, as the fraction cut from each side

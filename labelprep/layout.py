@@ -107,11 +107,14 @@ def read_table(path, *, root=None, known=None) -> dict[str, tuple[str, str]]:
     """
     path = Path(path)
     try:
-        text = path.read_bytes().decode("utf-8-sig")
+        data = path.read_bytes()
+        text = data.decode("utf-8-sig")
     except OSError as exc:
         raise InputError(f"cannot read label table {path}: {exc.strerror}") from exc
     except UnicodeDecodeError as exc:
-        raise InputError(f"label table {path} is not UTF-8 text (byte {exc.start})") from exc
+        lineno = data.count(b"\n", 0, exc.start) + 1
+        raise InputError(f"label table {path} line {lineno}: not UTF-8 text (byte {exc.start} is "
+                         f"0x{data[exc.start]:02x}); save the table as UTF-8") from exc
     reader = csv.reader(text.splitlines())
     header = next(reader, None)
     if not header:

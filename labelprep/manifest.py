@@ -20,6 +20,11 @@ from typing import Any, Iterator
 from .errors import InputError, OutputExistsError
 
 SIDECAR_SUFFIX = ".meta.json"
+# facts of one copy of the tree on one disk, kept beside the manifest instead of in it, so that the
+# manifest is byte-identical wherever the tree is copied (cp -r resets modification times); read()
+# joins them back, which is how a rescan finds the files it need not decode again
+CACHE_COLUMNS = ("mtime_ns",)
+CACHE_SUFFIX = ".scan-cache"
 FORMAT_TAG = "labelprep-manifest/1"
 
 
@@ -56,7 +61,7 @@ _COLUMN_LIST = [
     Column("has_alpha", "boolean", "scan", "the image has an alpha channel or a transparent palette entry"),
     Column("has_gps", "boolean", "scan", "the EXIF data holds GPS location tags"),
     Column("spread", "Float64", "scan", "standard deviation of luminance (0-255) on the hash thumbnail; near 0 for a blank image"),
-    Column("fault", "str", "scan", "why the file could not be fully decoded: empty, not-image, unreadable, truncated, corrupt, pixel-limit, symlink, timeout"),
+    Column("fault", "str", "scan", "why the file could not be fully decoded: empty, not-image, unreadable, truncated, corrupt, pixel-limit, symlink, timeout, bad-name (not UTF-8)"),
     Column("fault_detail", "str", "scan", "one line from the decoder explaining the fault"),
     Column("phash_c80", "str", "scan", "perceptual hash (as phash) of the centred box keeping 80% of each side; matches copies cropped 5-15% per side"),
     Column("phash_c70", "str", "scan", "perceptual hash (as phash) of the centred box keeping 70% of each side"),
@@ -110,10 +115,21 @@ def coerce(df):
             if s.dtype == object:
                 s = s.replace("", pd.NA)
             if col.dtype == "Int64":
-                out[name] = pd.to_numeric(s).astype("Int64")
+                # straight from the text: to_numeric goes through float64 when a cell is empty,
+                # which rounds nanosecond times and other integers above 2**53
+                out[name] = _exact_ints(s)
             else:
                 out[name] = pd.to_numeric(s).astype("Float64")
     return order_columns(out)
+
+
+def _exact_ints(s):
+    import pandas as pd
+
+    try:
+        return s.astype("Int64")
+    except (TypeError, ValueError):  # text such as "3.0": parsed as a number first
+        return pd.to_numeric(s).astype("Int64")
 
 
 def empty(columns=CORE_COLUMNS):
@@ -132,6 +148,12 @@ def is_parquet(path) -> bool:
 def sidecar_path(path) -> Path:
     path = Path(path)
     return path.with_name(path.name + SIDECAR_SUFFIX)
+
+
+def cache_path(path) -> Path:
+    """Where :data:`CACHE_COLUMNS` of manifest ``path`` are kept: ``<name>.scan-cache`` (CSV)."""
+    path = Path(path)
+    return path.with_name(path.name + CACHE_SUFFIX)
 
 
 def read(path):
@@ -159,11 +181,41 @@ def read(path):
         raise InputError(f"cannot read manifest {path}: {exc}") from exc
     if "path" not in df.columns:
         raise InputError(f"{path} is not a labelprep manifest (it has no 'path' column)")
-    return coerce(df)
+    return _with_cache(coerce(df), path)
+
+
+def _with_cache(df, path: Path):
+    """``df`` with the cache columns joined back by path, where the cache row's sha256 agrees.
+
+    The digest guards against a cache older than the manifest (a crash between the two writes):
+    a row it does not match gets no modification time, so the rescan decodes that file again.
+    """
+    import pandas as pd
+
+    missing = [c for c in CACHE_COLUMNS if c not in df.columns]
+    if not missing or "sha256" not in df.columns:
+        return df
+    try:
+        cache = pd.read_csv(cache_path(path), dtype=object, keep_default_na=False,
+                            encoding="utf-8", encoding_errors="surrogateescape")
+    except (OSError, ValueError):
+        return df  # no cache (or a damaged one): every file is decoded again, nothing is wrong
+    if not {"path", "sha256", *missing} <= set(cache.columns):
+        return df
+    cache = coerce(cache[["path", "sha256", *missing]]).drop_duplicates("path")
+    return order_columns(df.merge(cache, on=["path", "sha256"], how="left"))
 
 
 def to_csv_bytes(df) -> bytes:
     """The exact bytes :func:`write` puts in a CSV manifest (UTF-8, ``\\n`` line ends)."""
+    return _csv_bytes(_without_cache(df))
+
+
+def _without_cache(df):
+    return df.drop(columns=[c for c in CACHE_COLUMNS if c in df.columns])
+
+
+def _csv_bytes(df) -> bytes:
     out = coerce(df)
     text = out.to_csv(index=False, lineterminator="\n", float_format="%.4f")
     return text.encode("utf-8", errors="surrogateescape")
@@ -171,6 +223,9 @@ def to_csv_bytes(df) -> bytes:
 
 def write(df, path, *, meta: dict | None = None, force: bool = False) -> Path:
     """Write ``df`` to ``path`` atomically, and its sidecar beside it.
+
+    The :data:`CACHE_COLUMNS` go to the scan cache beside it (:func:`cache_path`), not into the
+    manifest; :func:`read` joins them back.
 
     Parameters
     ----------
@@ -190,16 +245,23 @@ def write(df, path, *, meta: dict | None = None, force: bool = False) -> Path:
     """
     path = Path(path)
     guard_output(path, force=force)
+    cached = [c for c in CACHE_COLUMNS if c in df.columns]
     if is_parquet(path):
         try:
             import pyarrow  # noqa: F401
         except ImportError as exc:
             raise InputError(f"writing {path} needs pyarrow: pip install 'labelprep[parquet]'") from exc
         with atomic_path(path) as tmp:
-            coerce(df).to_parquet(tmp, index=False)
+            coerce(_without_cache(df)).to_parquet(tmp, index=False)
     else:
         data = to_csv_bytes(df)
         with atomic_path(path) as tmp:
+            Path(tmp).write_bytes(data)
+    if cached and "sha256" in df.columns:
+        # after the manifest, never before: a crash in between leaves an older cache, whose
+        # digests then fail to match and cost a decode, never a stale row reused
+        data = _csv_bytes(df[["path", "sha256", *cached]])
+        with atomic_path(cache_path(path)) as tmp:
             Path(tmp).write_bytes(data)
     write_sidecar(path, meta or {})
     return path

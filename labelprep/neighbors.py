@@ -39,7 +39,7 @@ _BRUTE_PAIR_COST = 0.14
 _TABLE_COST = 0.12
 
 
-def radius_pairs(hashes, radius, *, method="auto"):
+def radius_pairs(hashes, radius, *, method="auto", progress=None):
     """Every pair of hashes whose Hamming distance is at most ``radius``.
 
     Parameters
@@ -51,6 +51,9 @@ def radius_pairs(hashes, radius, *, method="auto"):
     method : {"auto", "brute", "index"}
         ``"brute"`` blocked all-pairs comparison, ``"index"`` multi-index hashing, ``"auto"``
         brute force for small inputs and the index otherwise. All give identical results.
+    progress : callable, optional
+        ``progress(iterable, total=int, label=str)`` returning an iterable; wraps the index's
+        passes (one per chunk).
 
     Returns
     -------
@@ -78,7 +81,7 @@ def radius_pairs(hashes, radius, *, method="auto"):
     if method == "brute" or (method == "auto" and _BRUTE_PAIR_COST * n * n / 2 <= cost):
         i, j = _brute_pairs(hashes, radius)
     else:
-        i, j = _index_pairs(hashes, plan)
+        i, j = _index_pairs(hashes, plan, progress)
     order = np.lexsort((j, i))
     i, j = i[order], j[order]
     dist = np.bitwise_count(hashes[i] ^ hashes[j]).astype(np.int64)
@@ -149,13 +152,16 @@ def _plan_chunks(n, radius):
     return best, best_cost
 
 
-def _index_pairs(hashes, plan):
+def _index_pairs(hashes, plan, progress=None):
     """Multi-index hashing: probe each chunk's bucket table, verify, keep each pair once."""
     widths, radii, radius = plan
     shifts = np.cumsum([0] + widths[:-1]).tolist()
     masks = [np.uint64(((1 << w) - 1) << s) for w, s in zip(widths, shifts)]
     found_i, found_j = [], []
-    for c, (width, r, shift) in enumerate(zip(widths, radii, shifts)):
+    chunks = enumerate(zip(widths, radii, shifts))
+    if progress is not None:
+        chunks = progress(chunks, total=len(widths), label="near-duplicate search")
+    for c, (width, r, shift) in chunks:
         if r < 0:
             continue  # the other chunks' radii already cover the pigeonhole bound
         # items sorted by chunk value: bucket members are contiguous and probes stay local

@@ -7,12 +7,17 @@ hashes need only a small image; the decoder still consumes the whole stream, so 
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import io
 import os
+import signal
+import stat
+import threading
 import warnings
 
 from . import defaults, formats
+from .errors import ParameterError
 
 # JPEGs are decoded, and other images box-reduced, to a shorter side of at least this many
 # pixels: 4x the 32-pixel thumbnail pHash is computed from (hashing.py), so the thumbnail's
@@ -39,7 +44,38 @@ def blank_facts() -> dict:
             "phash": "", "phash_c80": "", "phash_c70": "", "phash_mirror": "", "detail": None}
 
 
-def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> dict:
+class _OutOfTime(BaseException):
+    """Raised by the alarm inside a probe; a BaseException, so the decoder's ``except Exception``
+    clauses cannot turn it into an ordinary decoding fault."""
+
+
+@contextlib.contextmanager
+def _deadline(seconds):
+    """Interrupt the block with :class:`_OutOfTime` after ``seconds`` (SIGALRM, POSIX main thread).
+
+    Elsewhere (a thread, Windows) the block runs without a limit: signals reach only the main
+    thread. Pool workers run their tasks in their main thread, so scans get the limit.
+    """
+    usable = (seconds is not None and hasattr(signal, "setitimer")
+              and threading.current_thread() is threading.main_thread())
+    if not usable:
+        yield
+        return
+
+    def expire(signum, frame):
+        raise _OutOfTime
+
+    previous = signal.signal(signal.SIGALRM, expire)
+    signal.setitimer(signal.ITIMER_REAL, seconds)
+    try:
+        yield
+    finally:
+        signal.setitimer(signal.ITIMER_REAL, 0)
+        signal.signal(signal.SIGALRM, previous)
+
+
+def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
+          time_limit: float | None = defaults.PROBE_SECONDS) -> dict:
     """Read one file and return its facts as a dict of manifest columns.
 
     Parameters
@@ -49,6 +85,9 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> dict:
     max_pixels : int
         Pixel budget: an image whose header declares more pixels is not decoded (decompression-bomb
         guard) and gets ``fault="pixel-limit"``.
+    time_limit : float or None
+        Seconds the file may take; a file still being read or decoded then gets
+        ``fault="timeout"``. None: no limit. Enforced with SIGALRM in the main thread only.
 
     Returns
     -------
@@ -57,7 +96,7 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> dict:
         orientation), ``mode``, ``bits``, ``frames``, ``has_alpha``, ``has_gps``, ``spread``, ``fault``,
         ``fault_detail`` and the hash columns of :func:`labelprep.hashing.fingerprint`.
         ``fault`` is one of ``""``, ``"empty"``, ``"unreadable"``, ``"not-image"``,
-        ``"truncated"``, ``"corrupt"``, ``"pixel-limit"``.
+        ``"truncated"``, ``"corrupt"``, ``"pixel-limit"``, ``"timeout"``.
 
     Examples
     --------
@@ -65,9 +104,17 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> dict:
     >>> facts["format"], facts["width"], facts["fault"]   # doctest: +SKIP
     ('jpeg', 3000, '')
     """
+    if time_limit is not None:
+        if not isinstance(time_limit, (int, float)) or isinstance(time_limit, bool):
+            raise TypeError(f"time_limit must be a number of seconds or None; got {type(time_limit).__name__}")
+        if not time_limit > 0:
+            raise ParameterError(f"time_limit must be positive; got time_limit={time_limit!r}")
     facts = blank_facts()
     try:
-        _probe_into(facts, os.fspath(path), max_pixels)
+        with _deadline(time_limit):
+            _probe_into(facts, os.fspath(path), max_pixels)
+    except _OutOfTime:
+        facts["fault"], facts["fault_detail"] = "timeout", f"not read and decoded within {time_limit:g} s"
     except ImportError:
         raise  # a broken installation is not a property of the file
     except MemoryError:
@@ -81,10 +128,14 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS) -> dict:
 def _probe_into(facts: dict, path: str, max_pixels: int) -> None:
     try:
         st = os.stat(path)
+        if stat.S_ISDIR(st.st_mode):  # a folder the walk could not list (scanner.walk)
+            os.listdir(path)
         with open(path, "rb") as fh:
             data = fh.read()
     except OSError as exc:
-        facts["fault"], facts["fault_detail"] = "unreadable", _one_line(exc)
+        # the reason alone: the message's absolute path would make the manifest depend on where
+        # the tree is (the row's path already names the file)
+        facts["fault"], facts["fault_detail"] = "unreadable", exc.strerror or _one_line(exc)
         return
     facts["bytes"] = len(data)
     facts["mtime_ns"] = st.st_mtime_ns

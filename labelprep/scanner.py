@@ -21,7 +21,7 @@ from pathlib import Path
 
 from . import layout as layout_mod
 from .errors import InputError, ParameterError
-from .parallel import map_ordered
+from .parallel import map_ordered, resolve_jobs
 from .probe import DEFAULT_MAX_PIXELS, blank_facts, probe
 from .progress import resolve
 
@@ -58,12 +58,14 @@ def journal_path(manifest_path) -> Path:
 
 
 def walk(root, *, include_hidden: bool = False):
-    """Every regular file below ``root``: ``(files, links, skipped)``, all sorted POSIX paths.
+    """Every regular file below ``root``: ``(files, links, misnamed, skipped)``, sorted POSIX paths.
 
-    ``links`` are symbolic links (never followed); ``skipped`` are junk names left out.
+    ``links`` are symbolic links (never followed); ``misnamed`` are files and folders whose name is
+    not UTF-8, written with ``\\xNN`` escapes (not read: no manifest format holds such a name
+    exactly, and pandas' string columns refuse it); ``skipped`` are junk names left out.
     """
     root = os.fspath(root)
-    files, links, skipped = [], [], []
+    files, links, misnamed, skipped = [], [], [], []
     stack = [""]
     while stack:
         rel_dir = stack.pop()
@@ -80,6 +82,8 @@ def walk(root, *, include_hidden: bool = False):
             rel = f"{rel_dir}/{entry.name}" if rel_dir else entry.name
             if not include_hidden and is_junk(entry.name):
                 skipped.append(rel)
+            elif not _is_utf8(entry.name):
+                misnamed.append(_escaped(rel))
             elif entry.is_symlink():
                 links.append(rel)
             elif entry.is_dir(follow_symlinks=False):
@@ -87,7 +91,20 @@ def walk(root, *, include_hidden: bool = False):
             else:
                 files.append(rel)
         stack.extend(reversed(subdirs))
-    return sorted(files), sorted(links), sorted(skipped)
+    return sorted(files), sorted(links), sorted(misnamed), sorted(skipped)
+
+
+def _is_utf8(name: str) -> bool:
+    try:
+        name.encode("utf-8")  # undecodable bytes arrive as lone surrogates (PEP 383)
+    except UnicodeEncodeError:
+        return False
+    return True
+
+
+def _escaped(text: str) -> str:
+    """``text`` with the bytes that are not UTF-8 written as ``\\xNN``: valid text everywhere."""
+    return os.fsencode(text).decode("utf-8", errors="backslashreplace")
 
 
 def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
@@ -120,7 +137,8 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
         same root and options are reused like ``previous`` rows, and every file probed now is
         appended to it. The caller removes it once the manifest is written.
     progress : callable, optional
-        See :mod:`labelprep.progress`; called once, around the files that are decoded.
+        See :mod:`labelprep.progress`; called around the comparison with earlier rows (label
+        ``"rescan"``, when there are any) and around the files that are decoded (``"scan files"``).
 
     Returns
     -------
@@ -142,20 +160,21 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
         raise InputError(f"{root} is not a folder")
     if not isinstance(max_pixels, int) or isinstance(max_pixels, bool) or max_pixels <= 0:
         raise ParameterError(f"max_pixels must be a positive int; got max_pixels={max_pixels!r}")
-    files, links, skipped = walk(root_path, include_hidden=include_hidden)
+    files, links, misnamed, skipped = walk(root_path, include_hidden=include_hidden)
     chosen = layout if layout != "auto" else layout_mod.detect(files, labels_table=labels)
-    assigned = layout_mod.assign(files + links, chosen, root=root_path, labels_table=labels,
+    assigned = layout_mod.assign(files + links + misnamed, chosen, root=root_path, labels_table=labels,
                                  group_pattern=group_pattern)
 
     header = {"journal": _JOURNAL_TAG, "root": str(root_path.resolve()), "max_pixels": max_pixels,
               "version": _version(), "facts": list(FACTS)}
     logged = _read_journal(journal, header) if journal is not None else []
     known = _known_facts(previous, logged)
-    reused, todo = _split_unchanged(root_path, files, known)
+    reused, todo = _split_unchanged(root_path, files, known, resolve(progress))
 
     pieces = [reused]
     work = functools.partial(probe, max_pixels=max_pixels)
-    results = map_ordered(work, (os.path.join(root_path, rel) for rel in todo), jobs=jobs)
+    results = map_ordered(work, (os.path.join(root_path, rel) for rel in todo), jobs=jobs,
+                          chunksize=_chunksize(len(todo), jobs))
     with _JournalWriter(journal, header, fresh=not logged) as log:
         batch = []
         for rel, facts in zip(todo, resolve(progress)(results, total=len(todo), label="scan files")):
@@ -167,19 +186,28 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
                 batch = []
         pieces.append(_piece(batch))
     pieces.append(_piece([{"path": rel, **blank_facts(), "fault": "symlink",
-                           "fault_detail": f"symbolic link to {_readlink(root_path / rel)}; not followed"}
+                           "fault_detail": f"symbolic link to {_escaped(_readlink(root_path / rel))}; not followed"}
                           for rel in links]))
+    pieces.append(_piece([{"path": rel, **blank_facts(), "fault": "bad-name",
+                           "fault_detail": "name is not valid UTF-8 (shown with \\x escapes); not read"}
+                          for rel in misnamed]))
 
     df = pd.concat([p for p in pieces if len(p)] or [_piece([])], ignore_index=True)
-    df = df.set_index("path").reindex(files + links).reset_index()
+    df = df.set_index("path").reindex(files + links + misnamed).reset_index()
     for name in ("label", "group", "given_split"):
         df[name] = assigned[name]
     df["issues"] = ""
     df = manifest.coerce(df).sort_values("path", kind="stable").reset_index(drop=True)
     df.attrs["scan"] = {"layout": chosen, "probed": len(todo), "reused": len(files) - len(todo),
-                        "links": len(links), "skipped_junk": len(skipped),
+                        "links": len(links), "misnamed": len(misnamed), "skipped_junk": len(skipped),
                         "skipped_examples": skipped[:5]}
     return df
+
+
+def _chunksize(n: int, jobs) -> int:
+    """Files per task: up to 16 to amortise the round trip to a worker, but small enough that
+    every worker gets several tasks (a short list would otherwise go to one worker whole)."""
+    return max(1, min(16, n // (8 * resolve_jobs(jobs))))
 
 
 def previous_manifest(path, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):
@@ -239,22 +267,23 @@ def _known_facts(previous, logged: list):
     return known[usable].set_index("path")
 
 
-def _split_unchanged(root: Path, files: list, known):
+def _split_unchanged(root: Path, files: list, known, progress):
     """``(reused rows, paths to probe)``: a row is reused when the file's size and mtime match."""
     if known is None or not len(known):
         return _piece([]), list(files)
     size = known["bytes"].to_dict()
     mtime = known["mtime_ns"].to_dict()
+    base = os.fspath(root)
     unchanged, todo = [], []
-    for rel in files:
-        if rel in size and _stat_matches(root / rel, size[rel], mtime[rel]):
+    for rel in progress(files, total=len(files), label="rescan"):
+        if rel in size and _stat_matches(os.path.join(base, rel), size[rel], mtime[rel]):
             unchanged.append(rel)
         else:
             todo.append(rel)
     return known.loc[unchanged].reset_index(), todo
 
 
-def _stat_matches(path: Path, size, mtime_ns) -> bool:
+def _stat_matches(path: str, size, mtime_ns) -> bool:
     try:
         st = os.stat(path, follow_symlinks=False)
     except OSError:

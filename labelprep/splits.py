@@ -79,6 +79,7 @@ _SIZE_WEIGHT = 1.0
 _TOL = 1e-12
 # a unit holding kept rows from several old splits follows the first of these (test never loses)
 _PRECEDENCE = ("test", "val", "train")
+_PRECEDENCE_RANK = {name: i for i, name in enumerate(_PRECEDENCE)}
 
 
 def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, progress=None):
@@ -350,8 +351,7 @@ def _fixed_splits(units, old_split, names):
     """
     import pandas as pd
 
-    precedence = {name: i for i, name in enumerate(_PRECEDENCE)}
-    row_rank = pd.Series(old_split, dtype=object).map(precedence).fillna(-1).to_numpy(dtype=np.int64)
+    row_rank = pd.Series(old_split, dtype=object).map(_PRECEDENCE_RANK).fillna(-1).to_numpy(dtype=np.int64)
     fixed = units.fixed_from_rows(row_rank)
     to_index = np.array([names.index(p) if p in names else -1 for p in _PRECEDENCE])
     return np.where(fixed >= 0, to_index[np.clip(fixed, 0, None)], -1)
@@ -366,19 +366,18 @@ def _old_assignment(frame, old):
         return np.full(n, "", dtype=object), np.full(n, -1, dtype=np.int64)
     prev = old.assign(split=old["split"].fillna("").astype(str), path=old["path"].astype(str))
     prev = prev[prev["split"].isin(SPLIT_NAMES)]
-    rank = prev["split"].map({name: i for i, name in enumerate(_PRECEDENCE)})
-    prev = prev.assign(_rank=rank).sort_values(["_rank", "path"], kind="stable")
+    prev = prev.assign(_rank=prev["split"].map(_PRECEDENCE_RANK))
+    prev = prev.sort_values(["_rank", "path"], kind="stable")
     fold = (pd.to_numeric(prev["fold"], errors="coerce") if "fold" in prev.columns
             else pd.Series(np.nan, index=prev.index))
     prev = prev.assign(_fold=fold.fillna(-1).astype("int64"))
     split_of = pd.Series("", index=frame.index, dtype=object)
     fold_of = pd.Series(-1, index=frame.index, dtype="int64")
     found = pd.Series(False, index=frame.index)
-    keys = [("sha256", lambda s: s != ""), ("path", lambda s: s != "")]
-    for column, wanted in keys:
+    for column in ("sha256", "path"):
         if column not in frame.columns or column not in prev.columns:
             continue
-        table = prev[wanted(prev[column].fillna("").astype(str))].drop_duplicates(column)
+        table = prev[prev[column].fillna("").astype(str) != ""].drop_duplicates(column)
         table = table.set_index(table[column].astype(str))
         key = frame[column].fillna("").astype(str)
         hit = ~found & key.isin(table.index)

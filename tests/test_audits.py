@@ -196,7 +196,8 @@ class TestCommand:
         write_image(root / "train" / "dog" / "b.jpg", seed=2)
         (root / "test" / "cat").mkdir(parents=True)
         (root / "test" / "cat" / "a_copy.jpg").write_bytes((root / "train" / "cat" / "a.jpg").read_bytes())
-        res = runner.invoke(main, ["audit", str(root), "--fail-on", "leaks", "--json", str(tmp_path / "a.json")])
+        res = runner.invoke(main, ["audit", str(root), "--fail-on", "leaks",
+                                   "--json", str(tmp_path / "a.json")])
         assert res.exit_code == 1, res.output
         saved = json.loads((tmp_path / "a.json").read_text())
         assert saved["split_column"] == "given_split"
