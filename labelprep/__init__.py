@@ -25,6 +25,7 @@ _EXPORTS = {
     "check": "checks",
     "group": "clusters",
     "split": "splits",
+    "split_summary": "splits",
     "audit": "audits",
     "report": "reports",
     "export": "exports",
