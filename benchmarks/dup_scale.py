@@ -13,7 +13,6 @@ from __future__ import annotations
 import argparse
 import resource
 import time
-import tracemalloc
 
 import numpy as np
 
@@ -33,14 +32,39 @@ def planted_hashes(n, radius, seed):
 
 
 def measured(fn):
-    """(result, seconds, peak MiB of numpy/Python allocations during fn)."""
-    tracemalloc.start()
+    """(result, seconds, process peak resident memory in MiB so far).
+
+    The peak is the process-wide high-water mark (getrusage): a later step's figure covers the
+    earlier steps too. tracemalloc is not used because tracing every numpy allocation slows the
+    search two- to threefold.
+    """
     t0 = time.perf_counter()
     result = fn()
     seconds = time.perf_counter() - t0
-    peak = tracemalloc.get_traced_memory()[1] / 2**20
-    tracemalloc.stop()
-    return result, seconds, peak
+    return result, seconds, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def fingerprint_cost(repeats=200):
+    """Per-image time of fingerprint() and of imagehash.phash alone, side by side, on the sizes
+    the probe hands over (shorter side 256-511 px after its reduction)."""
+    import imagehash
+    import skimage.data
+    from PIL import Image
+
+    from labelprep.hashing import fingerprint
+
+    photo = Image.fromarray(skimage.data.astronaut())  # scikit-image's bundled 512x512 photo
+    print("\n== per-image cost: fingerprint (4 hashes + detail) against imagehash.phash alone")
+    for side in (256, 384, 511):
+        img = photo.resize((side * 4 // 3, side))
+        costs = []
+        for fn in (fingerprint, imagehash.phash):
+            t0 = time.perf_counter()
+            for _ in range(repeats):
+                fn(img)
+            costs.append((time.perf_counter() - t0) / repeats * 1000)
+        print(f"{img.size[0]}x{img.size[1]} RGB: fingerprint {costs[0]:.2f} ms, "
+              f"imagehash.phash {costs[1]:.2f} ms, ratio {costs[0] / costs[1]:.2f}x")
 
 
 def main():
@@ -59,21 +83,21 @@ def main():
     found = set(zip(i.tolist(), j.tolist()))
     planted_found = sum((int(k) - 1, int(k)) in found for k in copies)
     print(f"pairs {len(i):,}; planted found {planted_found:,}/{len(copies):,}; "
-          f"time {seconds:.1f} s; traced peak {peak:.0f} MiB; "
-          f"process max RSS {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MiB")
+          f"time {seconds:.1f} s; process peak RSS {peak:.0f} MiB")
 
     n = args.brute_n
     small, _ = planted_hashes(n, r, seed=1)
     print(f"\n== side by side, n={n:,}, radius {r}")
-    brute, t_brute, m_brute = measured(lambda: radius_pairs(small, r, method="brute"))
-    index, t_index, m_index = measured(lambda: radius_pairs(small, r, method="index"))
+    brute, t_brute, _ = measured(lambda: radius_pairs(small, r, method="brute"))
+    index, t_index, _ = measured(lambda: radius_pairs(small, r, method="index"))
     same = all(np.array_equal(a, b) for a, b in zip(brute, index))
-    print(f"brute {t_brute:.2f} s ({m_brute:.0f} MiB), index {t_index:.2f} s ({m_index:.0f} MiB): "
+    print(f"brute {t_brute:.2f} s, index {t_index:.2f} s: "
           f"ratio brute/index {t_brute / t_index:.1f}x; identical pairs: {same} ({len(brute[0]):,})")
     scale = (args.n / n) ** 2
     print(f"brute force at n={args.n:,} would take about {t_brute * scale:.0f} s "
           f"(quadratic extrapolation) against {seconds:.1f} s measured: {t_brute * scale / seconds:.0f}x")
 
+    fingerprint_cost()
     if args.skip_group:
         return
     import pandas as pd
@@ -91,8 +115,7 @@ def main():
                       "sha256": [f"{k:064x}" for k in range(rows)], "detail": 0.3, **cols})
     out, seconds, peak = measured(lambda: group(m))
     print(f"clustered rows {int(out['dup_group'].notna().sum()):,}; time {seconds:.1f} s; "
-          f"traced peak {peak:.0f} MiB; process max RSS "
-          f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MiB")
+          f"process peak RSS {peak:.0f} MiB (manifest included)")
 
 
 if __name__ == "__main__":

@@ -22,12 +22,26 @@ class _Failure(click.ClickException):
         self.exit_code = exit_code
 
 
+def _stop(signum, frame):
+    raise SystemExit(128 + signum)  # the shell's status for death by that signal
+
+
 class _Group(click.Group):
     def invoke(self, ctx):
+        import signal
+        import threading
+
+        # SIGTERM ends a command the way Ctrl-C does, through its finally blocks: worker
+        # processes are stopped, the scan journal is flushed, temporary files are removed
+        main_thread = threading.current_thread() is threading.main_thread()
+        previous = signal.signal(signal.SIGTERM, _stop) if main_thread else None
         try:
             return super().invoke(ctx)
         except LabelprepError as exc:
             raise _Failure(str(exc), exc.exit_code) from exc
+        finally:
+            if main_thread:
+                signal.signal(signal.SIGTERM, previous)
 
 
 def _stack(*decorators):
@@ -90,6 +104,9 @@ GROUP_OPTIONS = _stack(
     _max_distance,
     click.option("--keep-conflicts", is_flag=True,
                  help="Keep clusters that span labels in the split (default: leave them out)."),
+    click.option("--flips", is_flag=True,
+                 help="Also match left-right mirrored copies (off by default: some labels, such as "
+                      "left/right signs, change when mirrored)."),
 )
 SPLIT_OPTIONS = _stack(
     click.option("--ratios", callback=_parse_ratios, default=",".join(map(str, defaults.RATIOS)),
@@ -218,9 +235,6 @@ def check(manifest_path, fail_on, quiet, **limits):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
 @GROUP_OPTIONS
-@click.option("--flips", is_flag=True,
-              help="Also match left-right mirrored copies (off by default: some labels, such as "
-                   "left/right signs, change when mirrored).")
 @_quiet
 def group(manifest_path, max_distance, keep_conflicts, flips, quiet):
     """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""

@@ -5,20 +5,22 @@ perceptual hashes of one (:data:`labelprep.hashing.HASH_COLUMNS`: whole image an
 boxes) is within ``max_distance`` bits of any of the other's. Each candidate pair is verified
 (:func:`_verified`): a match between the same box of both images must also agree in the centre
 box, and a link involving a low-detail image (``detail`` below :data:`LOW_DETAIL`) needs the
-whole-image hashes within :data:`LOW_DETAIL_DISTANCE` bits: smooth images have strongly correlated hash bits, and
-distinct ones sit a few bits apart (on scikit-learn's digits upsampled to 64x64, plain pHash at
-8 bits links 45% of them). Clusters are the connected components of the links (union-find), so
-a chain of copies stays together.
+whole-image hashes within :data:`LOW_DETAIL_DISTANCE` bits. Smooth images have strongly
+correlated hash bits and distinct ones sit a few bits apart: on scikit-learn's digits upsampled
+to 64x64, plain pHash at 8 bits links 45% of them. Clusters are the connected components of the
+links (union-find), so a chain of copies stays together.
 """
 
 from __future__ import annotations
 
 from . import codes
+from .defaults import MAX_DISTANCE
 from .errors import ParameterError
 from .hashing import HASH_COLUMNS, INNER_COLUMN, MIRROR_COLUMN
 
-DEFAULT_MAX_DISTANCE = 8
-"""Default radius in bits: chosen with benchmarks/dup_accuracy.py (see DEVELOPERS.md)."""
+DEFAULT_MAX_DISTANCE = MAX_DISTANCE
+"""Default radius, 8 bits: on benchmarks/dup_accuracy.py pair precision and mild-edit recall
+are both 1.0 from 6 to 10 bits; 8 sits in the middle of that plateau."""
 
 LOW_DETAIL = 0.05
 """``detail`` below this marks a low-detail image. Measured by benchmarks/dup_accuracy.py: the
@@ -27,8 +29,8 @@ upsampled digits score at most 0.034, the bundled photographs and their edited c
 
 LOW_DETAIL_DISTANCE = 2
 """Radius on the whole-image hash for links that involve a low-detail image (at most
-``max_distance``); their box hashes are not used, since cropping a smooth image mostly keeps
-its background."""
+``max_distance``). Their box hashes are not used: on the upsampled digits they add false links
+(benchmarks/dup_accuracy.py)."""
 
 _STAGE = "group"
 

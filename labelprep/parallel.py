@@ -11,7 +11,7 @@ import os
 from collections import deque
 from itertools import islice
 
-from .errors import ParameterError
+from .errors import LabelprepError, ParameterError
 
 # chunks in flight per worker: enough to keep every worker busy while the head chunk is
 # collected, few enough that results waiting to be consumed stay a small, fixed amount
@@ -76,8 +76,9 @@ def map_ordered(func, items, *, jobs=None, chunksize: int = 16):
 
 def _pooled(func, items, jobs: int, chunksize: int):
     from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
 
-    pool = ProcessPoolExecutor(max_workers=jobs)
+    pool = ProcessPoolExecutor(max_workers=jobs, initializer=_leave_interrupts_to_parent)
     pending: deque = deque()
     try:
         while True:
@@ -88,13 +89,26 @@ def _pooled(func, items, jobs: int, chunksize: int):
                 pending.append(pool.submit(_run_chunk, func, chunk))
             if not pending:
                 return
-            for failed, value in pending.popleft().result():
+            try:
+                done = pending.popleft().result()
+            except BrokenProcessPool as exc:
+                raise LabelprepError("a worker process stopped unexpectedly (killed, or out of "
+                                     "memory); run the command again to resume") from exc
+            for failed, value in done:
                 if failed:
                     raise value
                 yield value
     finally:
         # on early close (an interrupted scan) do not wait for the queued chunks to run
         pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _leave_interrupts_to_parent():
+    """Workers ignore Ctrl-C (sent to the whole process group): the parent stops the pool and
+    cancels queued work, so an interrupt ends cleanly instead of in one traceback per worker."""
+    import signal
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _run_chunk(func, chunk):

@@ -15,7 +15,7 @@ REPORT_HTML = "report.html"
 def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, include_hidden=False,
             jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
             max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
-            max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, ratios=defaults.RATIOS,
+            max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=False, ratios=defaults.RATIOS,
             seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 
@@ -59,12 +59,13 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
     scan_facts = m.attrs.get("scan", {})
     m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
               min_spread=min_spread)
-    m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, progress=progress)
+    m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips,
+              progress=progress)
     m = split(m, ratios=ratios, seed=seed, folds=folds, keep_from=keep_from, progress=progress)
     options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,
                "max_aspect": max_aspect, "min_spread": min_spread,
-               "max_distance": max_distance, "keep_conflicts": keep_conflicts,
+               "max_distance": max_distance, "keep_conflicts": keep_conflicts, "flips": flips,
                "ratios": list(ratios), "seed": seed, "folds": folds}
     meta = {"root": str(root.resolve()), "seed": seed,
             "stages": {"prepare": {"options": options, "scan": scan_facts}}}

@@ -23,7 +23,7 @@ from labelprep.cli import main
 from labelprep.errors import LabelprepError
 from labelprep.parallel import map_ordered
 
-FILES = 160
+FILES = 80
 # fixed, so that a failure is reproduced by running the test again
 RNG_SEED = 8
 
@@ -34,7 +34,7 @@ def tree(tmp_path_factory):
     for k in range(FILES):
         path = root / f"c{k % 4}" / f"{k:03d}.png"
         path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_bytes(encode(textured((160, 120), k), "PNG"))
+        path.write_bytes(encode(textured((128, 96), k), "PNG"))
     return root
 
 
@@ -94,14 +94,19 @@ def _assert_clean_stop(out: Path, stderr: str) -> None:
         manifest.read(out)
 
 
-@pytest.mark.parametrize("how", ["SIGINT", "SIGTERM", "SIGINT", "SIGTERM"])
-def test_signal_at_a_random_point_then_resume(tree, reference, tmp_path, how, request):
+@pytest.mark.parametrize("how, to_group", [("SIGINT", False), ("SIGTERM", False),
+                                           ("SIGINT", True), ("SIGTERM", True)])
+def test_signal_at_a_random_point_then_resume(tree, reference, tmp_path, how, to_group, request):
+    """A signal to the scan alone (kill PID) or to all its processes (Ctrl-C in a terminal)."""
     expected, seconds = reference
     rng = random.Random(f"{RNG_SEED}-{request.node.name}")
     out = tmp_path / "m.csv"
     proc = _start_scan(tree, out)
     time.sleep(rng.uniform(0.2, 1.2) * seconds)  # anywhere from start-up to the last file
-    proc.send_signal(getattr(signal, how))
+    if to_group:
+        os.killpg(proc.pid, getattr(signal, how))
+    else:
+        proc.send_signal(getattr(signal, how))
     _, stderr = proc.communicate(timeout=60)
     _assert_session_ended(proc)
     _assert_clean_stop(out, stderr)
@@ -221,5 +226,31 @@ def test_unwritable_output_folder(runner, tree, tmp_path, monkeypatch):
 
 def test_output_in_a_missing_folder(runner, tree, tmp_path):
     result = runner.invoke(main, ["scan", str(tree), "-o", str(tmp_path / "no" / "m.csv"), "-q"])
-    assert result.exit_code == 2 and "does not exist" in result.output
+    assert result.exit_code == 2 and "No such file or directory" in result.output
     assert "Traceback" not in result.output
+
+
+def test_disk_full_during_export_leaves_no_partial_file(runner, tree, tmp_path, monkeypatch):
+    import shutil
+
+    assert runner.invoke(main, ["prepare", str(tree), "--out", str(tmp_path / "out"), "-q"]).exit_code == 0
+    real_copystat, calls = shutil.copystat, []
+
+    def full_after_three(src, dst, **kwargs):  # the fourth copy finds the disk full
+        calls.append(dst)
+        if len(calls) == 4:
+            raise OSError(errno.ENOSPC, "No space left on device")
+        return real_copystat(src, dst, **kwargs)
+
+    monkeypatch.setattr(shutil, "copystat", full_after_three)
+    dest = tmp_path / "dest"
+    result = runner.invoke(main, ["export", str(tmp_path / "out" / "manifest.csv"), str(dest),
+                                  "--mode", "copy", "-q"])
+    tally(faults=1)
+    assert result.exit_code == 2 and "No space left on device" in result.output
+    assert "Traceback" not in result.output
+    assert [p for p in dest.rglob("*") if p.name.endswith(".part")] == []
+    placed = [p for p in dest.rglob("*") if p.is_file()]
+    assert len(placed) == 3  # the files finished before the fault, each whole
+    for p in placed:
+        assert p.read_bytes() == (tree / p.parent.name / p.name).read_bytes()
