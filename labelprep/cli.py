@@ -64,12 +64,18 @@ def _parse_ratios(ctx, param, value):
 
 _existing_dir = click.Path(exists=True, file_okay=False, dir_okay=True, path_type=Path)
 _existing_file = click.Path(exists=True, file_okay=True, dir_okay=False, path_type=Path)
+# a manifest is a file, or a folder of part files (partitioned Parquet); read() tells them apart
+_existing_manifest = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
 
 _quiet = click.option("--quiet", "-q", is_flag=True, help="No progress bar and no summary.")
 _force = click.option("--force", is_flag=True,
                       help="Replace outputs that labelprep did not write (never touches sources).")
 _jobs = click.option("--jobs", "-j", type=click.IntRange(min=0), default=0, show_default=True,
                      help="Worker processes for decoding; 0 = every core.")
+_cluster = click.option("--cluster", metavar="ADDRESS", default=None,
+                        help="Decode the files on the Dask cluster whose scheduler is at ADDRESS "
+                             "(e.g. tcp://10.0.0.5:8786) instead of local processes; every worker "
+                             "must see ROOT at the same path. Needs labelprep[cluster].")
 _max_pixels = click.option("--max-pixels", type=click.IntRange(min=1), default=defaults.MAX_PIXELS,
                            show_default=True,
                            help="Pixel budget per image; larger images are flagged and not decoded.")
@@ -163,9 +169,13 @@ def main():
               metavar="MANIFEST", help="Manifest to write (.csv, or .parquet with pyarrow). "
                                        "If it exists, unchanged files are not decoded again.")
 @SCAN_OPTIONS
+@_cluster
+@click.option("--partitions", type=click.IntRange(min=1), default=None, metavar="N",
+              help="Write MANIFEST (a .parquet name) as a folder of N Parquet part files.")
 @_force
 @_quiet
-def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_pixels, force, quiet):
+def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_pixels, cluster,
+         partitions, force, quiet):
     """Index every file under ROOT: label, size, format, digests and perceptual hash.
 
     A rescan decodes only new and changed files (by size and modification time); an interrupted
@@ -179,13 +189,13 @@ def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_
     m = run(root, layout=layout, labels=labels, group_pattern=group_pattern,
             include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
             previous=previous_manifest(output, root=root, max_pixels=max_pixels), journal=journal,
-            progress=_progress(quiet))
+            progress=_progress(quiet), cluster=cluster)
     facts = m.attrs.get("scan", {})
     options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels}
     manifest.write(m, output, meta={"root": str(root.resolve()),
                                     "stages": {"scan": {"options": options, "result": facts}}},
-                   force=True)
+                   force=True, partitions=partitions)
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
                 f"{facts.get('reused', 0)} unchanged), layout {facts.get('layout')} -> {output}")
@@ -213,7 +223,7 @@ def _gate(m, fail_on: str):
 
 
 @main.command()
-@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @CHECK_OPTIONS
 @_max_pixels
 @_fail_on
@@ -233,7 +243,7 @@ def check(manifest_path, fail_on, quiet, **limits):
 
 
 @main.command()
-@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @GROUP_OPTIONS
 @_quiet
 def group(manifest_path, max_distance, keep_conflicts, flips, quiet):
@@ -249,7 +259,7 @@ def group(manifest_path, max_distance, keep_conflicts, flips, quiet):
 
 
 @main.command()
-@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
 @_quiet
 def split(manifest_path, ratios, seed, folds, keep_from, quiet):
@@ -279,7 +289,7 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
 
 
 @main.command()
-@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @click.option("--json", "json_path", type=click.Path(path_type=Path), help="Write the summary as JSON.")
 @click.option("--markdown", "md_path", type=click.Path(path_type=Path), help="Write a Markdown report.")
 @click.option("--html", "html_path", type=click.Path(path_type=Path),
@@ -345,7 +355,7 @@ def audit(target, fail_on, json_path, max_distance, layout, labels, group_patter
 
 
 @main.command()
-@click.argument("manifest_path", metavar="MANIFEST", type=_existing_file)
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @click.argument("dest", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--mode", type=click.Choice(["hardlink", "symlink", "copy"]), default="hardlink",
               show_default=True, help="How files are placed; hardlinks fall back to copies across filesystems.")
@@ -378,6 +388,7 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @CHECK_OPTIONS
 @GROUP_OPTIONS
 @SPLIT_OPTIONS
+@_cluster
 @_fail_on
 @_force
 @_quiet

@@ -1,7 +1,8 @@
 """The manifest: one row per file found, its columns and dtypes, and how it is read and written.
 
-A manifest is a pandas DataFrame. On disk it is CSV (default) or Parquet (a name ending in
-``.parquet``), always written atomically, with a JSON sidecar ``<name>.meta.json`` that records how
+A manifest is a pandas DataFrame. On disk it is CSV (default), Parquet (a name ending in
+``.parquet``) or partitioned Parquet (a folder ``<name>.parquet/`` of part files, see
+:func:`write`), always written atomically, with a JSON sidecar ``<name>.meta.json`` that records how
 it was made. Every column the project writes is registered in :data:`COLUMNS`, so a reader finds
 each column's meaning here and the stage that computes it by the ``stage`` field.
 """
@@ -17,7 +18,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Iterator
 
-from .errors import InputError, OutputExistsError
+from .errors import InputError, OutputExistsError, ParameterError
 
 SIDECAR_SUFFIX = ".meta.json"
 # facts of one copy of the tree on one disk, kept beside the manifest instead of in it, so that the
@@ -26,6 +27,9 @@ SIDECAR_SUFFIX = ".meta.json"
 CACHE_COLUMNS = ("mtime_ns",)
 CACHE_SUFFIX = ".scan-cache"
 FORMAT_TAG = "labelprep-manifest/1"
+# part files of a partitioned manifest, numbered in row order (read() concatenates them by name)
+PART_NAME = "part-{:05d}.parquet"
+PART_GLOB = "part-[0-9][0-9][0-9][0-9][0-9].parquet"
 
 
 @dataclass(frozen=True)
@@ -54,7 +58,7 @@ _COLUMN_LIST = [
     Column("split", "str", "split", "train, val or test; empty for rows left out"),
     # scan facts
     Column("given_split", "str", "scan", "split named by a train/val/test folder in the source tree; empty otherwise"),
-    Column("mtime_ns", "Int64", "scan", "modification time in nanoseconds, used to skip unchanged files on a rescan"),
+    Column("mtime_ns", "Int64", "scan", "modification time in nanoseconds, used to skip unchanged files on a rescan; kept in the scan cache <manifest>.scan-cache, not in the manifest file"),
     Column("mode", "str", "scan", "Pillow mode of the decoded image (RGB, L, CMYK, I;16, P, ...)"),
     Column("bits", "Int64", "scan", "bits per sample as stored (PNG header; otherwise from the mode); over 8 is flagged unusual-mode"),
     Column("frames", "Int64", "scan", "number of frames (more than 1 for animations)"),
@@ -157,7 +161,8 @@ def cache_path(path) -> Path:
 
 
 def read(path):
-    """Read a manifest written by :func:`write` (CSV or Parquet) with every column's dtype restored.
+    """Read a manifest written by :func:`write` (CSV, Parquet or a partitioned Parquet folder)
+    with every column's dtype restored.
 
     Raises
     ------
@@ -167,10 +172,13 @@ def read(path):
     import pandas as pd
 
     path = Path(path)
-    if not path.is_file():
+    parts = part_files(path)
+    if not path.is_file() and not parts:
         raise InputError(f"manifest {path} does not exist")
     try:
-        if is_parquet(path) or path.is_dir():
+        if parts:
+            df = pd.concat([pd.read_parquet(p) for p in parts], ignore_index=True)
+        elif is_parquet(path):
             df = pd.read_parquet(path)
         else:
             df = pd.read_csv(path, dtype=object, keep_default_na=False, encoding="utf-8",
@@ -221,7 +229,7 @@ def _csv_bytes(df) -> bytes:
     return text.encode("utf-8", errors="surrogateescape")
 
 
-def write(df, path, *, meta: dict | None = None, force: bool = False) -> Path:
+def write(df, path, *, meta: dict | None = None, force: bool = False, partitions=None) -> Path:
     """Write ``df`` to ``path`` atomically, and its sidecar beside it.
 
     The :data:`CACHE_COLUMNS` go to the scan cache beside it (:func:`cache_path`), not into the
@@ -237,16 +245,33 @@ def write(df, path, *, meta: dict | None = None, force: bool = False) -> Path:
         Facts recorded in the sidecar (options, seed, root); tool version and time are added.
     force : bool
         Replace ``path`` even when it holds something that is not a labelprep manifest.
+    partitions : int, optional
+        Write ``path`` (a ``.parquet`` name) as a folder of this many part files of consecutive
+        rows, written in parallel threads; readers such as ``dask.dataframe.read_parquet`` then
+        take one part per task. When ``path`` already is such a folder, it stays one, with the
+        same number of parts, unless ``partitions`` says otherwise.
 
     Returns
     -------
     Path
         The path written.
+
+    Examples
+    --------
+    >>> write(m, "out/manifest.parquet", partitions=8)      # doctest: +SKIP
+    >>> read("out/manifest.parquet").equals(m)              # doctest: +SKIP
+    True
     """
     path = Path(path)
+    if partitions is None and part_files(path):
+        partitions = len(part_files(path))
+    if partitions is not None:
+        _check_partitions(partitions, path)
     guard_output(path, force=force)
     cached = [c for c in CACHE_COLUMNS if c in df.columns]
-    if is_parquet(path):
+    if partitions is not None:
+        _write_parts(df, path, partitions)
+    elif is_parquet(path):
         try:
             import pyarrow  # noqa: F401
         except ImportError as exc:
@@ -277,6 +302,8 @@ def guard_output(path, *, force: bool, marker: bytes | None = None) -> None:
     if not path.exists() or force:
         return
     if path.is_dir():
+        if marker is None and part_files(path):
+            return
         raise OutputExistsError(f"{path} is a folder; give a file name")
     if marker is None and (sidecar_path(path).is_file() or _looks_like_manifest(path)):
         return
@@ -284,6 +311,88 @@ def guard_output(path, *, force: bool, marker: bytes | None = None) -> None:
         return
     what = "a labelprep manifest" if marker is None else "a labelprep output"
     raise OutputExistsError(f"{path} exists and is not {what}; pass --force to replace it")
+
+
+def part_files(path) -> list:
+    """The part files of a partitioned manifest folder in row order; empty for anything else
+    (a file, a missing path, a folder holding anything besides part files)."""
+    path = Path(path)
+    if not path.is_dir():
+        return []
+    names = sorted(os.listdir(path))
+    parts = sorted(p.name for p in path.glob(PART_GLOB))
+    return [path / name for name in parts] if parts and parts == names else []
+
+
+def _check_partitions(partitions, path: Path) -> None:
+    if not isinstance(partitions, int) or isinstance(partitions, bool):
+        raise TypeError(f"partitions must be an int; got {type(partitions).__name__}")
+    if partitions < 1:
+        raise ParameterError(f"partitions must be >= 1; got partitions={partitions}")
+    if not is_parquet(path):
+        raise ParameterError(f"partitions needs a .parquet manifest name; got {path}")
+    if path.is_dir() and not part_files(path):
+        # never replaced, even with force: removing it could delete files labelprep did not write
+        raise OutputExistsError(f"{path} is a folder that is not a partitioned manifest; not replaced")
+
+
+def _write_parts(df, path: Path, partitions: int) -> None:
+    """``df`` as ``partitions`` Parquet files of consecutive rows in folder ``path``.
+
+    The parts go to a temporary folder beside ``path`` that then takes its place, so a reader
+    never sees a mix of old and new parts.
+    """
+    import shutil
+    from concurrent.futures import ThreadPoolExecutor
+
+    try:
+        import pyarrow  # noqa: F401
+    except ImportError as exc:
+        raise InputError(f"writing {path} needs pyarrow: pip install 'labelprep[parquet]'") from exc
+    out = coerce(_without_cache(df))
+    bounds = [len(out) * k // partitions for k in range(partitions + 1)]
+
+    def write_part(k):
+        part = tmp / PART_NAME.format(k)
+        out.iloc[bounds[k]:bounds[k + 1]].to_parquet(part, index=False)
+        with open(part, "rb+") as fh:
+            os.fsync(fh.fileno())
+
+    tmp = None
+    try:
+        tmp = Path(tempfile.mkdtemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent))
+        # pyarrow releases the GIL while it encodes and compresses, so threads write in parallel
+        with ThreadPoolExecutor(max_workers=min(partitions, os.cpu_count() or 1)) as pool:
+            list(pool.map(write_part, range(partitions)))
+        _swap_in(tmp, path)
+    except OSError as exc:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+        raise InputError(f"cannot write {path}: {exc.strerror or exc}") from exc
+    except BaseException:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+        raise
+
+
+def _swap_in(new: Path, path: Path) -> None:
+    """Put folder ``new`` at ``path``, replacing the file or parts folder there.
+
+    A folder cannot be renamed over another in one step, so the old one is first renamed aside:
+    between the two renames ``path`` is briefly missing, never half written.
+    """
+    import shutil
+
+    if not path.exists():
+        os.rename(new, path)
+        return
+    old = new.with_name(new.name + ".old")
+    os.rename(path, old)
+    os.rename(new, path)
+    if old.is_dir():
+        shutil.rmtree(old)
+    else:
+        old.unlink()
 
 
 def _head(path: Path, n: int) -> bytes:

@@ -1,4 +1,5 @@
-"""One way to map per-file work over many files: in this process or on a process pool.
+"""One way to map per-file work over many files: in this process, on a process pool, or on a Dask
+cluster.
 
 Results come back in input order, whatever order the workers finish in, so outputs are
 deterministic; at most a bounded number of chunks are in flight, so memory stays flat in N
@@ -11,11 +12,13 @@ import os
 from collections import deque
 from itertools import islice
 
-from .errors import LabelprepError, ParameterError
+from .errors import InputError, LabelprepError, ParameterError
 
 # chunks in flight per worker: enough to keep every worker busy while the head chunk is
 # collected, few enough that results waiting to be consumed stay a small, fixed amount
 WINDOW_PER_JOB = 4
+# seconds to wait for a Dask scheduler to answer before giving up on the address
+CONNECT_SECONDS = 10
 
 
 def resolve_jobs(jobs) -> int:
@@ -37,7 +40,7 @@ def resolve_jobs(jobs) -> int:
     return jobs
 
 
-def map_ordered(func, items, *, jobs=None, chunksize: int = 16):
+def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None):
     """Yield ``func(item)`` for each item, in input order, with bounded memory.
 
     Parameters
@@ -50,6 +53,11 @@ def map_ordered(func, items, *, jobs=None, chunksize: int = 16):
         Worker processes; 1 runs in this process; None or 0 uses every core.
     chunksize : int
         Items per task sent to a worker (amortises the cost of a round trip to a worker).
+    cluster : str, optional
+        Address of a running Dask distributed scheduler (``tcp://host:8786``); the chunks then
+        run on its workers instead (``jobs`` is ignored: the workers' threads set the width) and
+        at most ``WINDOW_PER_JOB`` chunks per worker thread are in flight. Needs the ``cluster``
+        extra; ``func`` and the items must make sense on every worker (same paths).
 
     Yields
     ------
@@ -67,6 +75,9 @@ def map_ordered(func, items, *, jobs=None, chunksize: int = 16):
         raise TypeError(f"chunksize must be an int; got {type(chunksize).__name__}")
     if chunksize < 1:
         raise ParameterError(f"chunksize must be >= 1; got chunksize={chunksize}")
+    if cluster is not None:
+        yield from _on_cluster(func, iter(items), cluster, chunksize)
+        return
     if jobs == 1:
         for item in items:
             yield func(item)
@@ -101,6 +112,47 @@ def _pooled(func, items, jobs: int, chunksize: int):
     finally:
         # on early close (an interrupted scan) do not wait for the queued chunks to run
         pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _on_cluster(func, items, address, chunksize: int):
+    """:func:`_pooled` on a Dask cluster: the same chunks through :func:`_run_chunk`, in order."""
+    if not isinstance(address, str):
+        raise TypeError(f"cluster must be a scheduler address string; got {type(address).__name__}")
+    try:
+        from distributed import Client
+    except ImportError as exc:
+        raise InputError("--cluster needs Dask: pip install 'labelprep[cluster]'") from exc
+    try:
+        client = Client(address, timeout=CONNECT_SECONDS, set_as_default=False)
+    except (OSError, ValueError) as exc:  # refused, timed out (OSError) or a malformed address
+        raise InputError(f"cannot reach the Dask scheduler at {address}: {exc}") from exc
+    pending: deque = deque()
+    try:
+        window = WINDOW_PER_JOB * max(1, sum(client.nthreads().values()))
+        while True:
+            while len(pending) < window:
+                chunk = list(islice(items, chunksize))
+                if not chunk:
+                    break
+                # pure=False: equal chunks (a rescan of the same files) must still run
+                pending.append(client.submit(_run_chunk, func, chunk, pure=False))
+            if not pending:
+                return
+            try:
+                done = pending.popleft().result()
+            except Exception as exc:
+                # _run_chunk never raises, so this is the cluster failing the task (KilledWorker,
+                # lost connection, a result that cannot be sent back)
+                raise LabelprepError(f"the Dask cluster at {address} failed a task ({type(exc).__name__}: "
+                                     f"{exc}); run the command again to resume") from exc
+            for failed, value in done:
+                if failed:
+                    raise value
+                yield value
+    finally:
+        # on early close, drop the queued chunks instead of letting the workers finish them
+        client.cancel(list(pending))
+        client.close()
 
 
 def _leave_interrupts_to_parent():

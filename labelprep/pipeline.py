@@ -16,13 +16,14 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
             jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
             max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
             max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=False, ratios=defaults.RATIOS,
-            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None):
+            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 
     A manifest already in ``out`` from an earlier run is used as the rescan cache: unchanged files
     are not decoded again. Options are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
     :func:`~labelprep.group` and :func:`~labelprep.split`; ``keep_from`` is a manifest path or
-    DataFrame whose split is kept.
+    DataFrame whose split is kept. ``cluster`` (a Dask scheduler address) decodes the files on
+    that cluster's workers, as in :func:`~labelprep.scan`.
 
     Returns
     -------
@@ -55,7 +56,7 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
 
     m = scan(root, layout=layout, labels=labels, group_pattern=group_pattern,
              include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
-             previous=previous, progress=progress)
+             previous=previous, progress=progress, cluster=cluster)
     scan_facts = m.attrs.get("scan", {})
     m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
               min_spread=min_spread)

@@ -221,6 +221,21 @@ def draft_for_hashing(im) -> None:
     im.draft("L" if im.mode == "RGB" else im.mode, (HASH_SIDE, HASH_SIDE))
 
 
+def preload() -> None:
+    """Import, in this process, everything decoding a file needs (Pillow and its format plugins,
+    numpy, scipy's DCT), by probing a small JPEG made in memory.
+
+    Worker processes forked afterwards inherit the modules instead of each importing them again:
+    about 0.4 s of CPU saved per worker, which on a few hundred files is several percent.
+    """
+    from PIL import Image
+
+    Image.init()
+    buf = io.BytesIO()
+    Image.new("RGB", (2 * HASH_SIDE, 2 * HASH_SIDE)).save(buf, "JPEG")
+    _decode_into(blank_facts(), buf.getvalue(), "jpeg", DEFAULT_MAX_PIXELS)
+
+
 # modes whose samples are not intensities (palette indices) or that reduce() refuses, and the
 # mode they are reduced in instead (averaging palette indices would give noise)
 _REDUCE_AS = {"P": "RGB", "PA": "RGBA", "1": "L", "I;16": "I", "I;16L": "I", "I;16B": "I", "I;16N": "I"}

@@ -22,7 +22,7 @@ from pathlib import Path
 from . import layout as layout_mod
 from .errors import InputError, ParameterError
 from .parallel import map_ordered, resolve_jobs
-from .probe import DEFAULT_MAX_PIXELS, blank_facts, probe
+from .probe import DEFAULT_MAX_PIXELS, blank_facts, preload, probe
 from .progress import resolve
 
 # names skipped unless include_hidden: anything starting with "." plus these system files/folders
@@ -109,7 +109,7 @@ def _escaped(text: str) -> str:
 
 def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
          include_hidden: bool = False, jobs=None, max_pixels: int = DEFAULT_MAX_PIXELS,
-         previous=None, journal=None, progress=None):
+         previous=None, journal=None, progress=None, cluster=None):
     """Index every file below ``root`` into a new manifest.
 
     Parameters
@@ -126,6 +126,9 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
         Index hidden and system files too.
     jobs : int, optional
         Worker processes (None or 0: every core).
+    cluster : str, optional
+        Address of a Dask scheduler: the files are decoded on its workers (see
+        :func:`labelprep.parallel.map_ordered`), which must see ``root`` at the same absolute path.
     max_pixels : int
         Pixel budget per image; larger images are not decoded.
     previous : DataFrame, optional
@@ -172,9 +175,13 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
     reused, todo = _split_unchanged(root_path, files, known, resolve(progress))
 
     pieces = [reused]
+    if todo and cluster is None and resolve_jobs(jobs) > 1:
+        preload()  # before the pool forks, so that workers do not each import Pillow and scipy
     work = functools.partial(probe, max_pixels=max_pixels)
-    results = map_ordered(work, (os.path.join(root_path, rel) for rel in todo), jobs=jobs,
-                          chunksize=_chunksize(len(todo), jobs))
+    # a worker on another machine has another working folder: send it absolute paths
+    base = root_path.resolve() if cluster is not None else root_path
+    results = map_ordered(work, (os.path.join(base, rel) for rel in todo), jobs=jobs,
+                          chunksize=_chunksize(len(todo), jobs), cluster=cluster)
     with _JournalWriter(journal, header, fresh=not logged) as log:
         batch = []
         for rel, facts in zip(todo, resolve(progress)(results, total=len(todo), label="scan files")):
@@ -221,7 +228,7 @@ def previous_manifest(path, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):
     from .errors import LabelprepError
 
     path = Path(path)
-    if not path.is_file():
+    if not path.is_file() and not manifest.part_files(path):
         return None
     meta = manifest.read_sidecar(path)
     stages = meta.get("stages", {})

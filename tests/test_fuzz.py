@@ -133,16 +133,18 @@ def test_every_seed_is_a_clean_row(tmp_path, name):
     assert facts["fault"] == ""
 
 
+@pytest.fixture(scope="module")
+def big_png(tmp_path_factory):
+    """A PNG of noise that takes about a second to decode: long enough to outlast a tiny limit."""
+    import numpy as np
+
+    path = tmp_path_factory.mktemp("slow") / "big.png"
+    noise = np.random.default_rng(0).integers(0, 256, (2000, 2000, 3), dtype=np.uint8)
+    path.write_bytes(encode(Image.fromarray(noise), "PNG"))
+    return path
+
+
 class TestTimeLimit:
-    @pytest.fixture(scope="class")
-    def big_png(self, tmp_path_factory):
-        import numpy as np
-
-        path = tmp_path_factory.mktemp("slow") / "big.png"
-        noise = np.random.default_rng(0).integers(0, 256, (2000, 2000, 3), dtype=np.uint8)
-        path.write_bytes(encode(Image.fromarray(noise), "PNG"))
-        return path
-
     def test_slow_decode_becomes_a_timeout_row_with_its_code(self, big_png):
         started = time.monotonic()
         facts = probe(big_png, time_limit=0.02)

@@ -88,7 +88,8 @@ def _clusters(m, root) -> tuple[list, int]:
     members_of: dict[int, list] = {}
     # a file the scan could not fully decode (its ``fault``), or one over the pixel budget, gets
     # no thumbnail: decoding it again would be slow or fail
-    risky = (sub["fault"] != "") | sub["issues"].map(lambda cell: "pixel-limit" in codes.parse(cell))
+    over_budget = sub["issues"].map(lambda cell: "pixel-limit" in codes.parse(cell)).astype(bool)
+    risky = (sub["fault"] != "") | over_budget
     for gid, *fields in zip(sub["dup_group"].astype("int64"), sub["path"], sub["label"], sub["split"],
                             sub["phash"], risky):
         members_of.setdefault(int(gid), []).append(fields)
