@@ -182,14 +182,14 @@ def _table(title: str, root: Path, work: Path, jobs: int, repeat: int, cores: in
     print(f"\n{title}")
     print(f"{'method':<44} {'ms/file':>9} {'vs (a)':>8} {'CPU ms/file':>12} "
           f"{'peak RSS MB main / worker':>27}")
-    per_file = {}
+    per_file, cpu_per_file = {}, {}
     for name, method, opts in rows:
         n_jobs = opts.get("jobs", jobs)
         # the rescan is cheap and its signal small next to process start-up: more repeats
         reps = repeat * 3 if opts.get("rescan") else repeat
         seconds, cpu, mem = _timed(method, root, empty, out, n_jobs, reps, rescan=opts.get("rescan", False))
         key = name[1]
-        per_file[key] = seconds
+        per_file[key], cpu_per_file[key] = seconds, cpu
         ratio = per_file["a"] / seconds if seconds > 0 else float("inf")
         print(f"{name:<44} {seconds * 1000:9.3f} {ratio:7.1f}x {cpu * 1000:12.3f} "
               f"{mem['main_mb']:13.0f} / {mem['worker_mb']:<10.0f}")
@@ -204,6 +204,11 @@ def _table(title: str, root: Path, work: Path, jobs: int, repeat: int, cores: in
         ]
         for text, value, ok in checks:
             print(f"  target {text:<40} measured {value:7.2f}x  {'met' if ok else 'MISSED'}")
+        # on a machine shared with other work the wall-clock gain of more jobs is not ours to see;
+        # CPU time per file is, so say what the cores would give if they were free
+        a_cpu, d_cpu, b_cpu = cpu_per_file["a"], cpu_per_file["d"], cpu_per_file["b"]
+        print(f"  from CPU time (an estimate for {cores} free cores): (d) {a_cpu / (d_cpu / cores):.2f}x "
+              f"faster than (a), {d_cpu / b_cpu:.2f}x of (b)/{cores} cores")
 
 
 def _memory_flat(sizes, work: Path, jobs: int):
@@ -220,6 +225,15 @@ def _memory_flat(sizes, work: Path, jobs: int):
         print(f"{n:>8} {mem['main_mb']:11.0f} / {mem['worker_mb']:<10.0f} {rescan * 1000:16.4f} "
               f"{mem_e['main_mb']:16.0f}")
         shutil.rmtree(root)
+
+
+def _cpu_pressure() -> str:
+    """The kernel's share of time some task waited for a CPU over the last 60 s (Linux PSI)."""
+    try:
+        first = Path("/proc/pressure/cpu").read_text().splitlines()[0]
+    except (OSError, IndexError):
+        return "n/a"
+    return dict(kv.split("=") for kv in first.split()[1:])["avg60"] + "%"
 
 
 def main(argv=None):
@@ -243,7 +257,8 @@ def main(argv=None):
     mixed_size = tuple(int(v) for v in args.mixed_size.split("x"))
     try:
         print(f"scan_speed: {os.cpu_count()} cores, jobs={cores}, load average at start "
-              f"{' '.join(f'{v:.1f}' for v in os.getloadavg())}; best of {args.repeat} "
+              f"{' '.join(f'{v:.1f}' for v in os.getloadavg())}, CPU pressure {_cpu_pressure()}; "
+              f"best of {args.repeat} "
               f"(rescans best of {3 * args.repeat}); start-up measured on an empty tree and subtracted")
         photos = work / "photos"
         total = _make_tree(photos, args.n, size, (("JPEG", "jpg"),), cores)
@@ -257,7 +272,8 @@ def main(argv=None):
                    mixed, work, args.jobs, args.repeat, cores, targets=False)
         if args.small:
             _memory_flat([int(v) for v in args.small.split(",")], work, args.jobs)
-        print(f"\nload average at end {' '.join(f'{v:.1f}' for v in os.getloadavg())}")
+        print(f"\nload average at end {' '.join(f'{v:.1f}' for v in os.getloadavg())}, "
+              f"CPU pressure {_cpu_pressure()}")
     finally:
         if args.workdir is None:
             shutil.rmtree(work, ignore_errors=True)

@@ -173,6 +173,9 @@ def read(path):
 
     path = Path(path)
     parts = part_files(path)
+    if path.is_dir() and not parts:
+        raise InputError(f"{path} is a folder but not a partitioned manifest (only "
+                         f"{PART_NAME.format(0)}, ... files)")
     if not path.is_file() and not parts:
         raise InputError(f"manifest {path} does not exist")
     try:
@@ -263,8 +266,8 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
     True
     """
     path = Path(path)
-    if partitions is None and part_files(path):
-        partitions = len(part_files(path))
+    if partitions is None:
+        partitions = len(part_files(path)) or None
     if partitions is not None:
         _check_partitions(partitions, path)
     guard_output(path, force=force)

@@ -150,17 +150,20 @@ def _on_cluster(func, items, address, chunksize: int):
                     raise value
                 yield value
     finally:
-        # on early close, drop the queued chunks instead of letting the workers finish them
-        client.cancel(list(pending))
+        # closing the client releases its futures: on early close the scheduler drops the
+        # queued chunks instead of letting the workers finish them
         client.close()
 
 
 def _leave_interrupts_to_parent():
     """Workers ignore Ctrl-C (sent to the whole process group): the parent stops the pool and
-    cancels queued work, so an interrupt ends cleanly instead of in one traceback per worker."""
+    cancels queued work, so an interrupt ends cleanly instead of in one traceback per worker.
+    SIGTERM gets its default back (a forked worker inherits the command line's handler), so a
+    pool that terminates its workers ends them at once."""
     import signal
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
 def _run_chunk(func, chunk):

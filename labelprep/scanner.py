@@ -352,9 +352,12 @@ class _JournalWriter:
 
     def _flush(self) -> None:
         if self._lines:
-            self._fh.write(("\n".join(self._lines) + "\n").encode("utf-8", errors="surrogateescape"))
-            self._fh.flush()
-            os.fsync(self._fh.fileno())
+            try:
+                self._fh.write(("\n".join(self._lines) + "\n").encode("utf-8", errors="surrogateescape"))
+                self._fh.flush()
+                os.fsync(self._fh.fileno())
+            except OSError as exc:  # a full disk: a torn last line is skipped by the next reader
+                raise InputError(f"cannot write scan journal {self._path}: {exc.strerror or exc}") from exc
             self._lines = []
         self._flushed = time.monotonic()
 

@@ -171,3 +171,10 @@ def test_scan_cli_partitions_and_stage_commands(class_tree, tmp_path, runner):
     # a rescan finds the partitioned manifest and decodes nothing again
     assert runner.invoke(main, args).exit_code == 0
     assert manifest.read_sidecar(target)["stages"]["scan"]["result"]["reused"] == 12
+
+
+def test_a_plain_folder_is_not_read_as_a_manifest(tmp_path):
+    (tmp_path / "m.parquet").mkdir()
+    (tmp_path / "m.parquet" / "other.csv").write_text("path\na.jpg\n")
+    with pytest.raises(InputError, match="not a partitioned manifest"):
+        manifest.read(tmp_path / "m.parquet")

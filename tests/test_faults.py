@@ -178,6 +178,18 @@ def test_full_disk_keeps_the_previous_manifest(tree, tmp_path):
     assert after == before  # manifest, sidecar and cache exactly as they were; no temp file
 
 
+def test_full_disk_on_a_first_scan_then_resume(tree, reference, tmp_path):
+    """The journal is the first file to outgrow the limit: one line, no manifest, then a resume."""
+    out = tmp_path / "m.csv"
+    run = _scan(tree, out, preexec_fn=_small_files(4096))
+    tally(faults=1)
+    assert run.returncode == 2 and "scan journal" in run.stderr, run.stderr
+    _assert_clean_stop(out, run.stderr)
+    assert not out.exists()
+    assert _scan(tree, out).returncode == 0
+    assert out.read_bytes() == reference[0]
+
+
 @pytest.mark.parametrize("target", ["manifest", "sidecar", "cache"])
 def test_no_space_at_any_write_keeps_the_manifest_whole(runner, tree, tmp_path, monkeypatch, target):
     out = tmp_path / "m.csv"
