@@ -422,11 +422,11 @@ def demo(folder, seed, jobs, force, quiet):
 
     FOLDER/photos holds the generated images (with planted problems), FOLDER/out the results.
     """
-    from .demo import make_demo, planted_summary
+    from .demo import GROUP_PATTERN, make_demo, planted_summary
     from .pipeline import prepare as run
 
     photos = make_demo(folder, seed=seed, force=force)
     _say(quiet, f"generated {photos}: {planted_summary(photos)}")
-    m, summary = run(photos, folder / "out", group_pattern=r"^[^/]+/(pool-\d+)-", seed=seed,
+    m, summary = run(photos, folder / "out", group_pattern=GROUP_PATTERN, seed=seed,
                      jobs=jobs, force=force, progress=_progress(quiet))
     _print_outcome(m, summary, folder / "out", quiet)

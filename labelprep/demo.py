@@ -19,6 +19,7 @@ CLASSES = {"starfish": 96, "anemone": 64, "urchin": 36, "crab": 20}
 POOLS = 24
 SIZE = (320, 240)
 PLANTED_NAME = "planted.csv"
+GROUP_PATTERN = r"^[^/]+/(pool-\d+)-"  # the pool in a demo file name is its group
 
 
 def make_demo(folder, *, seed: int = 0, force: bool = False) -> Path:

@@ -44,3 +44,18 @@ def test_manifest_readme_describes_every_column_and_code():
     missing_codes = [c for c in CODES if f"`{c}`" not in text]
     assert not missing_cols, f"manifests/README.md lacks columns {missing_cols}"
     assert not missing_codes, f"manifests/README.md lacks issue codes {missing_codes}"
+
+
+def test_demo_manifest_example_is_current(demo_tree, tmp_path):
+    """manifests/demo-manifest.csv is exactly what the demo's prepare writes (seed 0).
+
+    To refresh it after a deliberate change: `labelprep demo /tmp/d` and copy
+    /tmp/d/out/manifest.csv over manifests/demo-manifest.csv.
+    """
+    from labelprep.demo import GROUP_PATTERN
+    from labelprep.pipeline import prepare
+
+    prepare(demo_tree, tmp_path / "out", group_pattern=GROUP_PATTERN, seed=0, jobs=1)
+    produced = (tmp_path / "out" / "manifest.csv").read_text(encoding="utf-8")
+    example = (ROOT / "manifests" / "demo-manifest.csv").read_text(encoding="utf-8")
+    assert produced.splitlines() == example.splitlines()
