@@ -137,8 +137,10 @@ def one_pair_search(n: int) -> dict:
 
     from labelprep.neighbors import radius_pairs
 
-    hashes = np.random.default_rng(0).integers(0, 2**64 - 1, n, dtype=np.uint64, endpoint=True)
+    # the base is taken before the hashes exist: their 8 bytes each count as part of the search
     before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    # uniform 64-bit hashes made from random bytes: no temporaries larger than the array itself
+    hashes = np.frombuffer(np.random.default_rng(0).bytes(8 * n), dtype=np.uint64)
     (i, _, _), seconds = timed(lambda: radius_pairs(hashes, RADIUS, method="index"))
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     return {"n": n, "seconds": seconds, "peak_mib": peak, "base_mib": before, "pairs": int(len(i))}
@@ -158,7 +160,7 @@ def pair_search_at_scale(sizes: list) -> None:
         run["cost"] = cost
         runs.append(run)
         print(f"n={n:>11,}: {run['seconds']:8.2f} s, peak RSS {run['peak_mib']:7.0f} MiB "
-              f"(process before the search {run['base_mib']:.0f} MiB), pairs {run['pairs']:,}, "
+              f"(process before the hashes {run['base_mib']:.0f} MiB), pairs {run['pairs']:,}, "
               f"chunks {plan[0]}")
     last = runs[-1]
     per_unit = last["seconds"] / last["cost"]
@@ -167,12 +169,28 @@ def pair_search_at_scale(sizes: list) -> None:
         print(f"cost model calibrated at n={last['n']:,} predicts n={run['n']:,}: "
               f"{run['cost'] * per_unit:.2f} s (measured {run['seconds']:.2f} s)")
     print(f"memory above the process at n={last['n']:,}: {per_hash:.0f} bytes per hash")
+    # the method's complexity: probes grow as n, candidate checks as n^2 (table set-up is fixed)
+    fit = fitted_terms(runs) if len(runs) > 1 else None
+    if fit is not None:
+        print(f"least-squares fit t = a*n + b*n^2: a = {fit[0] * 1e6:.2f} s per million hashes, "
+              f"b = {fit[1] * 1e12:.3f} s per million squared")
     for n in (10_000_000, 100_000_000, 300_000_000):
         plan, cost = _plan_chunks(n, RADIUS)
-        seconds = cost * per_unit
-        print(f"extrapolated n={n:>11,}: {seconds:9.0f} s = {seconds / 3600:6.2f} h, "
-              f"about {per_hash * n / 2**30:5.1f} GiB (chunks {plan[0]}; time grows as n^2 "
-              f"once the candidate term dominates)")
+        fitted = "" if fit is None else f"; fit {(fit[0] * n + fit[1] * n * n) / 3600:6.2f} h"
+        print(f"extrapolated n={n:>11,}: cost model {cost * per_unit / 3600:6.2f} h{fitted}; "
+              f"about {per_hash * n / 2**30:5.1f} GiB (chunks {plan[0]})")
+
+
+def fitted_terms(runs):
+    """``(a, b)`` of ``seconds = a*n + b*n**2`` by least squares, both kept >= 0."""
+    import numpy as np
+    from scipy.optimize import nnls
+
+    n = np.array([r["n"] for r in runs], dtype=float)
+    seconds = np.array([r["seconds"] for r in runs])
+    scale = n.max()  # columns of similar size keep the solve well conditioned
+    (a, b), _ = nnls(np.column_stack([n / scale, (n / scale) ** 2]), seconds)
+    return a / scale, b / scale**2
 
 
 def main():

@@ -185,6 +185,8 @@ def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_
     from .scanner import journal_path, previous_manifest, scan as run
 
     manifest.guard_output(output, force=force)
+    if partitions is not None:
+        manifest.check_partitions(partitions, output)
     journal = journal_path(output)
     m = run(root, layout=layout, labels=labels, group_pattern=group_pattern,
             include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,

@@ -48,7 +48,8 @@ def fingerprint(img):
     ----------
     img : PIL.Image.Image
         The image after EXIF orientation, in any mode; it may have been reduced (JPEG draft
-        mode) as long as its shorter side stays at least 256 px when the original was larger.
+        mode) as long as its shorter side stays at least ``probe.HASH_SIDE`` (128) px when the
+        original was larger: four times the 32 px thumbnail the DCT is taken from.
 
     Returns
     -------

@@ -269,7 +269,7 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
     if partitions is None:
         partitions = len(part_files(path)) or None
     if partitions is not None:
-        _check_partitions(partitions, path)
+        check_partitions(partitions, path)
     guard_output(path, force=force)
     cached = [c for c in CACHE_COLUMNS if c in df.columns]
     if partitions is not None:
@@ -327,7 +327,10 @@ def part_files(path) -> list:
     return [path / name for name in parts] if parts and parts == names else []
 
 
-def _check_partitions(partitions, path: Path) -> None:
+def check_partitions(partitions, path) -> None:
+    """Raise unless ``path`` may be written as ``partitions`` part files (see :func:`write`);
+    callers check before a long scan rather than after it."""
+    path = Path(path)
     if not isinstance(partitions, int) or isinstance(partitions, bool):
         raise TypeError(f"partitions must be an int; got {type(partitions).__name__}")
     if partitions < 1:

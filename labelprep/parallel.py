@@ -128,13 +128,20 @@ def _on_cluster(func, items, address, chunksize: int):
         raise InputError(f"cannot reach the Dask scheduler at {address}: {exc}") from exc
     pending: deque = deque()
     try:
-        window = WINDOW_PER_JOB * max(1, sum(client.nthreads().values()))
+        try:
+            # a scheduler without workers would queue the chunks forever, silently
+            client.wait_for_workers(1, timeout=CONNECT_SECONDS)
+        except TimeoutError as exc:
+            raise InputError(f"the Dask scheduler at {address} has no workers "
+                             f"(none joined within {CONNECT_SECONDS} s)") from exc
+        window = WINDOW_PER_JOB * sum(client.nthreads().values())
         while True:
             while len(pending) < window:
                 chunk = list(islice(items, chunksize))
                 if not chunk:
                     break
-                # pure=False: equal chunks (a rescan of the same files) must still run
+                # pure=False: a key made from the arguments would let the scheduler hand back a
+                # result it still holds for the same paths, from before a file changed
                 pending.append(client.submit(_run_chunk, func, chunk, pure=False))
             if not pending:
                 return

@@ -39,7 +39,7 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
     from .checks import check
     from .clusters import group
     from .reports import report
-    from .scanner import scan
+    from .scanner import journal_path, previous_manifest, scan
     from .splits import split
 
     root, out = Path(root), Path(out)
@@ -50,13 +50,14 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
     manifest.guard_output(target, force=force)
     for name in (REPORT_JSON, REPORT_HTML):  # refuse before the work, not after it
         manifest.guard_output(out / name, force=force, marker=b"labelprep")
-    previous = _previous(target)
+    previous = previous_manifest(target, root=root, max_pixels=max_pixels)
+    journal = journal_path(target)
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
 
     m = scan(root, layout=layout, labels=labels, group_pattern=group_pattern,
              include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
-             previous=previous, progress=progress, cluster=cluster)
+             previous=previous, journal=journal, progress=progress, cluster=cluster)
     scan_facts = m.attrs.get("scan", {})
     m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
               min_spread=min_spread)
@@ -71,18 +72,8 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
     meta = {"root": str(root.resolve()), "seed": seed,
             "stages": {"prepare": {"options": options, "scan": scan_facts}}}
     manifest.write(m, target, meta=meta, force=True)
+    journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=root,
                      meta=manifest.read_sidecar(target), force=force)
     return m, summary
 
-
-def _previous(target: Path):
-    """The manifest an earlier run left in the output folder (the rescan cache), if any."""
-    from . import manifest
-
-    if not target.is_file():
-        return None
-    try:
-        return manifest.read(target)
-    except InputError:
-        return None  # not a manifest: guard_output already required --force to replace it

@@ -212,9 +212,10 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
 
 
 def _chunksize(n: int, jobs) -> int:
-    """Files per task: up to 16 to amortise the round trip to a worker, but small enough that
-    every worker gets several tasks (a short list would otherwise go to one worker whole)."""
-    return max(1, min(16, n // (8 * resolve_jobs(jobs))))
+    """Files per task: up to 16 to amortise the round trip to a worker (about a millisecond), but
+    few enough that every worker gets 32 tasks or more: at the end of a scan one worker may still
+    be busy with its last task while the others idle, so a task must be a small share of the run."""
+    return max(1, min(16, n // (32 * resolve_jobs(jobs))))
 
 
 def previous_manifest(path, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):

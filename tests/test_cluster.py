@@ -89,6 +89,14 @@ def test_unreachable_scheduler_is_an_input_error(monkeypatch):
         list(map_ordered(abs, [1], cluster="tcp://127.0.0.1:9"))
 
 
+def test_scheduler_without_workers_is_an_input_error(monkeypatch):
+    monkeypatch.setattr(parallel, "CONNECT_SECONDS", 1)
+    with distributed.LocalCluster(n_workers=0, processes=True, host="127.0.0.1",
+                                  dashboard_address=None) as empty:
+        with pytest.raises(InputError, match="has no workers"):
+            list(map_ordered(abs, [1], cluster=empty.scheduler_address))
+
+
 def test_cluster_must_be_an_address():
     with pytest.raises(TypeError, match="scheduler address string"):
         list(map_ordered(abs, [1], cluster=8786))
@@ -178,3 +186,10 @@ def test_a_plain_folder_is_not_read_as_a_manifest(tmp_path):
     (tmp_path / "m.parquet" / "other.csv").write_text("path\na.jpg\n")
     with pytest.raises(InputError, match="not a partitioned manifest"):
         manifest.read(tmp_path / "m.parquet")
+
+
+def test_scan_cli_refuses_partitions_of_a_csv_before_scanning(class_tree, tmp_path, runner):
+    result = runner.invoke(main, ["scan", str(class_tree), "-o", str(tmp_path / "m.csv"),
+                                  "--partitions", "2", "-q"])
+    assert result.exit_code == 2 and "needs a .parquet manifest name" in result.output
+    assert not (tmp_path / "m.csv.scan-journal").exists()  # refused before any file was read
