@@ -66,7 +66,9 @@ def timed(fn):
 def scan_side_by_side(n: int, tasks: int) -> None:
     import functools
 
-    from distributed import LocalCluster
+    import importlib
+
+    from distributed import Client, LocalCluster
 
     from labelprep import manifest
     from labelprep.parallel import map_ordered
@@ -91,7 +93,11 @@ def scan_side_by_side(n: int, tasks: int) -> None:
             with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
                               host="127.0.0.1", dashboard_address=None) as cluster:
                 address = cluster.scheduler_address
-                scan(warm, cluster=address)  # workers import labelprep and Pillow once
+                with Client(address, set_as_default=False) as client:
+                    # every worker imports the probe's modules before the clock starts (a warm-up
+                    # scan alone may land all its chunks on one worker)
+                    client.run(importlib.import_module, "labelprep.probe")
+                scan(warm, cluster=address)
                 m, seconds = timed(lambda: scan(root, cluster=address))
                 rows[f"cluster, {workers} worker{'s' if workers > 1 else ''}"] = seconds
                 same = manifest.to_csv_bytes(m) == reference
