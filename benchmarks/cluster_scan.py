@@ -18,6 +18,11 @@ hashes with the method's own cost model (neighbors._plan_chunks), calibrated on 
     python benchmarks/cluster_scan.py                           # the README figures
     python benchmarks/cluster_scan.py --n 60 --tasks 300        # a quick look
     python benchmarks/cluster_scan.py --n 0 --pairs 250000,500000,1000000,2000000
+
+With --cluster-pairs N it runs the same search on N hashes in this process (threads) and as tasks
+on a LocalCluster with 1 and 2 workers, checks the pairs are identical, and prints the times.
+
+    python benchmarks/cluster_scan.py --n 0 --cluster-pairs 1000000
 """
 
 from __future__ import annotations
@@ -199,11 +204,34 @@ def fitted_terms(runs):
     return a / scale, b / scale**2
 
 
+def pair_search_on_cluster(n: int) -> None:
+    """The pair search in process and on a LocalCluster with 1 and 2 workers, side by side."""
+    import numpy as np
+    from distributed import LocalCluster
+
+    from labelprep.neighbors import radius_pairs
+
+    hashes = np.frombuffer(np.random.default_rng(0).bytes(8 * n), dtype=np.uint64)
+    print(f"\n== near-pair search on a cluster, {n:,} random hashes, radius {RADIUS}; "
+          f"load average {os.getloadavg()[0]:.1f}")
+    local, seconds = timed(lambda: radius_pairs(hashes, RADIUS, method="index"))
+    print(f"in process (threads)   {seconds:8.2f} s   pairs {len(local[0]):,}")
+    for workers in (1, 2):
+        with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True,
+                          host="127.0.0.1", dashboard_address=None) as cluster:
+            remote, seconds = timed(lambda: radius_pairs(hashes, RADIUS, method="index",
+                                                         cluster=cluster.scheduler_address))
+        same = all(np.array_equal(a, b) for a, b in zip(local, remote))
+        print(f"cluster, {workers} worker(s)    {seconds:8.2f} s   identical pairs: {same}")
+
+
 def main():
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--n", type=int, default=240, help="files in the tree (0: skip the scan)")
     parser.add_argument("--tasks", type=int, default=2000, help="no-op items for the overhead")
     parser.add_argument("--pairs", default="", help="hash counts for the pair search, e.g. 1000000,2000000")
+    parser.add_argument("--cluster-pairs", type=int, default=0,
+                        help="hash count for the pair search on a LocalCluster (0: skip)")
     parser.add_argument("--one-pair-search", type=int, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.one_pair_search:
@@ -213,6 +241,8 @@ def main():
         scan_side_by_side(args.n, args.tasks)
     if args.pairs:
         pair_search_at_scale([int(x) for x in args.pairs.split(",")])
+    if args.cluster_pairs:
+        pair_search_on_cluster(args.cluster_pairs)
 
 
 if __name__ == "__main__":

@@ -73,9 +73,10 @@ _force = click.option("--force", is_flag=True,
 _jobs = click.option("--jobs", "-j", type=click.IntRange(min=0), default=0, show_default=True,
                      help="Worker processes for decoding; 0 = every core.")
 _cluster = click.option("--cluster", metavar="ADDRESS", default=None,
-                        help="Decode the files on the Dask cluster whose scheduler is at ADDRESS "
-                             "(e.g. tcp://10.0.0.5:8786) instead of local processes; every worker "
-                             "must see ROOT at the same path. Needs labelprep[cluster].")
+                        help="Run the work on the Dask cluster whose scheduler is at ADDRESS "
+                             "(e.g. tcp://scheduler-host:8786) instead of local processes: the "
+                             "decoding (every worker must see ROOT at the same path) and the "
+                             "near-pair search. Needs labelprep[cluster].")
 _max_pixels = click.option("--max-pixels", type=click.IntRange(min=1), default=defaults.MAX_PIXELS,
                            show_default=True,
                            help="Pixel budget per image; larger images are flagged and not decoded.")
@@ -116,6 +117,7 @@ GROUP_OPTIONS = _stack(
 )
 SPLIT_OPTIONS = _stack(
     click.option("--ratios", callback=_parse_ratios, default=",".join(map(str, defaults.RATIOS)),
+                 metavar="TRAIN,VAL,TEST",
                  show_default=True, help="train,val,test shares (two numbers: train,test)."),
     click.option("--seed", type=int, default=defaults.SEED, show_default=True,
                  help="Random seed; the same seed and files give the same split."),
@@ -247,13 +249,14 @@ def check(manifest_path, fail_on, quiet, **limits):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @GROUP_OPTIONS
+@_cluster
 @_quiet
-def group(manifest_path, max_distance, keep_conflicts, flips, quiet):
+def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
     """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""
     from .clusters import group as run
 
     m = run(_read(manifest_path), max_distance=max_distance, keep_conflicts=keep_conflicts,
-            flips=flips, progress=_progress(quiet))
+            flips=flips, progress=_progress(quiet), cluster=cluster)
     _write_back(m, manifest_path, "group", {"max_distance": max_distance,
                                             "keep_conflicts": keep_conflicts, "flips": flips})
     in_clusters = int(m["dup_group"].notna().sum())

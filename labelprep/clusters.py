@@ -36,7 +36,7 @@ _STAGE = "group"
 
 
 def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, flips=False,
-          progress=None):
+          progress=None, cluster=None):
     """Cluster exact and near-duplicates and mark them in a new manifest.
 
     Parameters
@@ -56,6 +56,9 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
         Also match each image's mirrored hash, so that left-right flipped copies join.
     progress : callable, optional
         ``progress(iterable, total=int, label=str)`` returning an iterable, to show the passes.
+    cluster : str, optional
+        Address of a Dask scheduler: the near-pair search runs as tasks on its workers
+        (:func:`labelprep.neighbors.radius_pairs`); the same result.
 
     Returns
     -------
@@ -102,7 +105,7 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     n = len(rows)
     sha = _text(rows, "sha256")
     exact = _same_value_links(sha)
-    near = _near_links(rows, int(max_distance), flips, progress)
+    near = _near_links(rows, int(max_distance), flips, progress, cluster)
     cluster = _components(n, np.concatenate([exact, near], axis=1))
     size = np.bincount(cluster, minlength=n)[cluster]
     in_cluster = size > 1
@@ -157,7 +160,7 @@ def _same_value_links(values):
     return np.vstack([keep, first[inverse[keep]]]).astype(np.int64)
 
 
-def _near_links(rows, max_distance, flips, progress):
+def _near_links(rows, max_distance, flips, progress, cluster=None):
     """Links (2, k) between rows with near hashes, each candidate pair verified (see _verified)."""
     import numpy as np
 
@@ -177,7 +180,7 @@ def _near_links(rows, max_distance, flips, progress):
     values = table[present]
     # each distinct value is searched once; rows sharing one are joined to its first owner
     uniques, first, inverse = np.unique(values, return_index=True, return_inverse=True)
-    i, j, _ = radius_pairs(uniques, max_distance, progress=progress)
+    i, j, _ = radius_pairs(uniques, max_distance, progress=progress, cluster=cluster)
     pairs = np.concatenate([np.vstack([owner, owner[first[inverse]]]),
                             np.vstack([owner[first[i]], owner[first[j]]])], axis=1)
     pairs = np.unique(np.sort(pairs, axis=0), axis=1)

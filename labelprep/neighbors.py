@@ -41,7 +41,7 @@ _BRUTE_PAIR_COST = 0.14
 _TABLE_COST = 0.12
 
 
-def radius_pairs(hashes, radius, *, method="auto", progress=None):
+def radius_pairs(hashes, radius, *, method="auto", progress=None, cluster=None):
     """Every pair of hashes whose Hamming distance is at most ``radius``.
 
     Parameters
@@ -56,6 +56,9 @@ def radius_pairs(hashes, radius, *, method="auto", progress=None):
     progress : callable, optional
         ``progress(iterable, total=int, label=str)`` returning an iterable; wraps the index's
         passes (one per chunk, run in parallel threads).
+    cluster : str, optional
+        Address of a Dask scheduler: the index's passes (one per chunk and probe bit, a few
+        dozen) run as tasks on its workers, the hashes sent to each worker once. The same pairs.
 
     Returns
     -------
@@ -82,6 +85,8 @@ def radius_pairs(hashes, radius, *, method="auto", progress=None):
     plan, cost = _plan_chunks(n, radius)
     if method == "brute" or (method == "auto" and _BRUTE_PAIR_COST * n * n / 2 <= cost):
         i, j = _brute_pairs(hashes, radius)
+    elif cluster is not None:
+        i, j = _cluster_pairs(hashes, plan, cluster, progress)
     else:
         i, j = _index_pairs(hashes, plan, progress)
     order = np.lexsort((j, i))
@@ -172,9 +177,46 @@ def _index_pairs(hashes, plan, progress=None):
     return _concat([p[0] for p in parts]), _concat([p[1] for p in parts])
 
 
-def _chunk_pairs(hashes, plan, c):
-    """Pairs within the radius that chunk ``c`` finds and no earlier chunk does."""
+_TASKS_PER_CHUNK = 8  # cluster tasks per chunk: enough to spread over workers, few re-sorts
+
+
+def _passes(plan, c) -> list[int]:
+    """The independent passes of chunk ``c``: -1 (pairs inside a bucket), then one per probe bit."""
+    widths, radii, _ = plan
+    return [-1] + list(range(widths[c] if radii[c] > 0 else 0))
+
+
+def _cluster_pairs(hashes, plan, address, progress=None):
+    """:func:`_index_pairs` with every pass of every chunk a task on a Dask cluster."""
+    from .parallel import map_ordered
+
+    _, radii, _ = plan
+    # every task sorts its chunk's keys again, so passes are dealt out round-robin (later probe
+    # bits cost more) into a few tasks per chunk rather than one task each
+    tasks = [(c, passes[g::_TASKS_PER_CHUNK]) for c, r in enumerate(radii) if r >= 0
+             for passes in [_passes(plan, c)] for g in range(_TASKS_PER_CHUNK)
+             if passes[g::_TASKS_PER_CHUNK]]
+    results = map_ordered(_pass_pairs, tasks, cluster=address, chunksize=1, shared=(hashes, plan))
+    if progress is not None:
+        results = progress(results, total=len(tasks), label="near-duplicate search")
+    parts = list(results)
+    return _concat([p[0] for p in parts]), _concat([p[1] for p in parts])
+
+
+def _pass_pairs(task, shared):
+    c, passes = task
+    hashes, plan = shared
+    return _chunk_pairs(hashes, plan, c, passes=passes)
+
+
+def _chunk_pairs(hashes, plan, c, passes=None):
+    """Pairs within the radius that chunk ``c`` finds and no earlier chunk does.
+
+    ``passes`` (see :func:`_passes`) selects part of the work; by default all of it. Passes find
+    disjoint sets of pairs, so they can run anywhere and be concatenated.
+    """
     widths, radii, radius = plan
+    passes = _passes(plan, c) if passes is None else passes
     shifts = np.cumsum([0] + widths[:-1]).tolist()
     width, r = widths[c], radii[c]
     earlier = [(np.uint64(((1 << widths[e]) - 1) << shifts[e]), radii[e])
@@ -198,11 +240,12 @@ def _chunk_pairs(hashes, plan, c):
         found_i.append(np.minimum(a, b))
         found_j.append(np.maximum(a, b))
 
-    # pattern 0: pairs inside one bucket, each taken once (later position only)
-    pos = np.arange(len(keys))
-    ends = (table[sorted_keys] >> 32) + (table[sorted_keys] & 0xFFFFFFFF)
-    verify(*_expand(pos, pos + 1, ends - pos - 1))
-    for high in range(width if r > 0 else 0):
+    if -1 in passes:
+        # pattern 0: pairs inside one bucket, each taken once (later position only)
+        pos = np.arange(len(keys))
+        ends = (table[sorted_keys] >> 32) + (table[sorted_keys] & 0xFFFFFFFF)
+        verify(*_expand(pos, pos + 1, ends - pos - 1))
+    for high in (p for p in passes if p >= 0):
         # a pattern whose top bit is `high` pairs a key without that bit to one with it;
         # probing only from the keys without it finds each pair once
         query = np.flatnonzero(((sorted_keys >> high) & 1) == 0)

@@ -8,6 +8,7 @@ however long the input is.
 
 from __future__ import annotations
 
+import functools
 import os
 from collections import deque
 from itertools import islice
@@ -40,7 +41,10 @@ def resolve_jobs(jobs) -> int:
     return jobs
 
 
-def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None):
+_NOTHING = object()
+
+
+def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None, shared=_NOTHING):
     """Yield ``func(item)`` for each item, in input order, with bounded memory.
 
     Parameters
@@ -58,6 +62,10 @@ def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None):
         run on its workers instead (``jobs`` is ignored: the workers' threads set the width) and
         at most ``WINDOW_PER_JOB`` chunks per worker thread are in flight. Needs the ``cluster``
         extra; ``func`` and the items must make sense on every worker (same paths).
+    shared : object, optional
+        A large read-only argument common to every item: ``func(item, shared)`` is called
+        instead of ``func(item)``. On a cluster it is sent to every worker once (scattered),
+        not with every task.
 
     Yields
     ------
@@ -76,8 +84,10 @@ def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None):
     if chunksize < 1:
         raise ParameterError(f"chunksize must be >= 1; got chunksize={chunksize}")
     if cluster is not None:
-        yield from _on_cluster(func, iter(items), cluster, chunksize)
+        yield from _on_cluster(func, iter(items), cluster, chunksize, shared)
         return
+    if shared is not _NOTHING:
+        func = functools.partial(_with_shared, func, shared)
     if jobs == 1:
         for item in items:
             yield func(item)
@@ -114,7 +124,7 @@ def _pooled(func, items, jobs: int, chunksize: int):
         pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _on_cluster(func, items, address, chunksize: int):
+def _on_cluster(func, items, address, chunksize: int, shared=_NOTHING):
     """:func:`_pooled` on a Dask cluster: the same chunks through :func:`_run_chunk`, in order."""
     if not isinstance(address, str):
         raise TypeError(f"cluster must be a scheduler address string; got {type(address).__name__}")
@@ -135,6 +145,10 @@ def _on_cluster(func, items, address, chunksize: int):
             raise InputError(f"the Dask scheduler at {address} has no workers "
                              f"(none joined within {CONNECT_SECONDS} s)") from exc
         window = WINDOW_PER_JOB * sum(client.nthreads().values())
+        extra = ()
+        if shared is not _NOTHING:
+            # one copy per worker, sent once; a future among the arguments arrives as its value
+            extra = (client.scatter(shared, broadcast=True, hash=False),)
         while True:
             while len(pending) < window:
                 chunk = list(islice(items, chunksize))
@@ -142,7 +156,7 @@ def _on_cluster(func, items, address, chunksize: int):
                     break
                 # pure=False: a key made from the arguments would let the scheduler hand back a
                 # result it still holds for the same paths, from before a file changed
-                pending.append(client.submit(_run_chunk, func, chunk, pure=False))
+                pending.append(client.submit(_run_chunk, func, chunk, *extra, pure=False))
             if not pending:
                 return
             try:
@@ -173,8 +187,17 @@ def _leave_interrupts_to_parent():
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
 
 
-def _run_chunk(func, chunk):
-    """``(failed, result or exception)`` per item, so one failure does not hide its neighbours."""
+def _with_shared(func, shared, item):
+    return func(item, shared)
+
+
+def _run_chunk(func, chunk, *shared):
+    """``(failed, result or exception)`` per item, so one failure does not hide its neighbours.
+
+    ``shared``, when given (on a cluster, the scattered value), is passed to ``func`` after the item.
+    """
+    if shared:
+        func = functools.partial(_with_shared, func, shared[0])
     out = []
     for item in chunk:
         try:

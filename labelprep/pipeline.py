@@ -62,7 +62,7 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, includ
     m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
               min_spread=min_spread)
     m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips,
-              progress=progress)
+              progress=progress, cluster=cluster)
     m = split(m, ratios=ratios, seed=seed, folds=folds, keep_from=keep_from, progress=progress)
     options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,

@@ -82,6 +82,33 @@ def test_early_close_cancels_queued_chunks(address):
     assert left == 0
 
 
+def test_shared_argument_reaches_every_item(address):
+    """A shared value is scattered once and passed to func after each item, on and off a cluster."""
+    got = list(map_ordered(pow, [1, 2, 3, 4], cluster=address, chunksize=1, shared=3))
+    assert got == [1, 8, 27, 64] == list(map_ordered(pow, [1, 2, 3, 4], jobs=1, shared=3))
+
+
+def test_pair_search_on_cluster_equals_local_and_brute_force(address):
+    """The index's passes run as cluster tasks and give exactly the pairs brute force gives."""
+    import numpy as np
+
+    from labelprep.neighbors import radius_pairs
+
+    rng = np.random.default_rng(5)
+    base = rng.integers(0, 2**63, size=3000, dtype=np.uint64)
+    # planted near pairs: flip up to 8 random bits of some hashes
+    flips = np.zeros(600, dtype=np.uint64)
+    for k in range(600):
+        for bit in rng.choice(64, size=int(rng.integers(0, 9)), replace=False):
+            flips[k] |= np.uint64(1) << np.uint64(bit)
+    hashes = np.concatenate([base, base[:600] ^ flips])
+    remote = radius_pairs(hashes, 8, method="index", cluster=address)
+    brute = radius_pairs(hashes, 8, method="brute")
+    for a, b in zip(remote, brute):
+        assert np.array_equal(a, b)
+    assert len(remote[0]) >= 600
+
+
 def test_unreachable_scheduler_is_an_input_error(monkeypatch):
     monkeypatch.setattr(parallel, "CONNECT_SECONDS", 1)
     # port 9 (discard) on loopback: nothing listens there in the test environment
