@@ -410,6 +410,7 @@ def _print_outcome(m, summary, out: Path, quiet: bool):
     from .reports import terminal_table
 
     _say(quiet, terminal_table(summary))
+    _say(quiet, "\nfiles behind each issue (first three; the manifest lists them all):")
     _print_issues(m, quiet)
     _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
 
