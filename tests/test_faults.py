@@ -128,8 +128,11 @@ def test_killed_worker_is_one_line_then_resume(tree, reference, tmp_path):
     if not workers:
         proc.wait(timeout=60)
         pytest.fail("the scan started no worker process")
-    time.sleep(0.3)
-    os.kill(workers[-1], signal.SIGKILL)  # as the kernel's out-of-memory killer would
+    time.sleep(0.05)  # soon enough that the scan is still running on a quiet machine
+    try:
+        os.kill(workers[-1], signal.SIGKILL)  # as the kernel's out-of-memory killer would
+    except ProcessLookupError:
+        pass  # the pool had already finished and retired it: the scan must still end whole
     _, stderr = proc.communicate(timeout=60)
     _assert_session_ended(proc)
     if proc.returncode != 0:  # else the worker was already done: nothing was lost either
