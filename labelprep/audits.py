@@ -179,14 +179,14 @@ def _leaking_pairs(frame, max_distance):
     import numpy as np
     import pandas as pd
 
-    from .neighbors import radius_pairs
+    from .neighbors import hex_to_uint64, radius_pairs
 
     parts = []
     if "phash" in frame.columns:
         phash = frame["phash"].fillna("").astype(str).str.lower()
         valid = phash.map(lambda h: len(h) == 16 and set(h) <= _HEX_DIGITS).to_numpy(dtype=bool)
         rows = np.flatnonzero(valid)
-        hashes = np.array([int(h, 16) for h in phash[valid]], dtype=np.uint64)
+        hashes = hex_to_uint64(phash[valid])
         i, j, dist = radius_pairs(hashes, max_distance)
         parts.append(pd.DataFrame({"a": rows[i], "b": rows[j], "distance": dist}))
     if "sha256" in frame.columns:

@@ -164,7 +164,7 @@ def _near_links(rows, max_distance, flips, progress, cluster=None):
     """Links (2, k) between rows with near hashes, each candidate pair verified (see _verified)."""
     import numpy as np
 
-    from .neighbors import radius_pairs
+    from .neighbors import hex_to_uint64, radius_pairs
 
     columns = [c for c in HASH_COLUMNS if c in rows.columns]
     if flips and MIRROR_COLUMN in rows.columns:
@@ -175,7 +175,7 @@ def _near_links(rows, max_distance, flips, progress, cluster=None):
     for k, column in enumerate(columns):
         cells = _text(rows, column)
         present[:, k] = cells != ""
-        table[present[:, k], k] = [int(cells[r], 16) for r in np.flatnonzero(present[:, k])]
+        table[present[:, k], k] = hex_to_uint64(cells[present[:, k]])
     owner = np.nonzero(present)[0]
     values = table[present]
     # each distinct value is searched once; rows sharing one are joined to its first owner

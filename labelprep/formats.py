@@ -40,7 +40,6 @@ EXTENSIONS = {
     "heif": (".heic", ".heif"),
 }
 _FORMAT_OF_EXTENSION = {ext: fmt for fmt, exts in EXTENSIONS.items() for ext in exts}
-IMAGE_EXTENSIONS = frozenset(_FORMAT_OF_EXTENSION)
 
 HEAD_BYTES = 32  # enough for every signature above
 
