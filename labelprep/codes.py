@@ -81,18 +81,29 @@ def replace_stage_codes(issues, stage: str, found: dict):
     if unknown:
         raise ValueError(f"stage {stage!r} does not own codes {sorted(unknown)}")
     masks = {code: np.asarray(mask, dtype=bool) for code, mask in found.items()}
-    cells = []
-    for i, cell in enumerate(issues.tolist()):
-        kept = [c for c in parse(cell) if c not in owned]
+    cells = issues.to_numpy(dtype=object).copy()
+    # most rows are clean and stay clean: rebuild only the cells that hold or gain a code
+    touched = cells != ""
+    for mask in masks.values():
+        touched |= mask
+    for i in np.flatnonzero(touched):
+        kept = [c for c in parse(cells[i]) if c not in owned]
         kept += [code for code, mask in masks.items() if mask[i]]
-        cells.append(join(kept))
+        cells[i] = join(kept)
     return issues.__class__(cells, index=issues.index, dtype=issues.dtype)
 
 
 def errors_mask(issues):
     """Boolean Series: the row carries at least one error code (so it is left out of the split)."""
+    import numpy as np
+    import pandas as pd
+
     error_codes = {c.code for c in _CODE_LIST if c.severity == ERROR}
-    return issues.map(lambda cell: any(c in error_codes for c in parse(cell))).astype(bool)
+    cells = issues.to_numpy(dtype=object)
+    flagged = np.zeros(len(cells), dtype=bool)
+    for i in np.flatnonzero(cells != ""):  # clean rows (most of them) need no parsing
+        flagged[i] = any(c in error_codes for c in parse(cells[i]))
+    return pd.Series(flagged, index=issues.index)
 
 
 def counts(issues) -> dict[str, int]:
