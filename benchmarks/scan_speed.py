@@ -14,6 +14,10 @@ each in a fresh process, on the tree and on an empty tree: the per-file cost is
 it. Peak memory is the resident set size of the main process and of the largest worker.
 Finally the peak memory of (d) on N = 1,000 and 10,000 small files shows it flat in N.
 
+A rescan only compares sizes and times, whatever the pixels: on a few hundred files its whole
+cost is below the noise of process start-up (tens of milliseconds), so the (e) target is judged
+on the largest small-file tree, where it is measurable, and (e) on the photos is shown as well.
+
     python benchmarks/scan_speed.py                       # the README figures (takes minutes)
     python benchmarks/scan_speed.py --n 20 --mixed 12 --small 200,1000   # a quick look
 """
@@ -168,7 +172,8 @@ def _timed(method: str, root: Path, empty: Path, out: Path, jobs: int, repeat: i
 
 # ------------------------------------------------------------------ the report
 
-def _table(title: str, root: Path, work: Path, jobs: int, repeat: int, cores: int, *, targets: bool):
+def _table(title: str, root: Path, work: Path, jobs: int, repeat: int, cores: int):
+    """Rows (a) to (e) for the tree at ``root``; returns seconds and CPU seconds per file by row letter."""
     empty = work / "empty"
     empty.mkdir(exist_ok=True)
     out = work / f"{root.name}.csv"
@@ -190,41 +195,53 @@ def _table(title: str, root: Path, work: Path, jobs: int, repeat: int, cores: in
         seconds, cpu, mem = _timed(method, root, empty, out, n_jobs, reps, rescan=opts.get("rescan", False))
         key = name[1]
         per_file[key], cpu_per_file[key] = seconds, cpu
-        ratio = per_file["a"] / seconds if seconds > 0 else float("inf")
-        print(f"{name:<44} {seconds * 1000:9.3f} {ratio:7.1f}x {cpu * 1000:12.3f} "
+        # a cost at or below zero is under the start-up noise: no ratio can be read from it
+        ratio = f"{per_file['a'] / seconds:7.1f}x" if seconds > 0 else "  noise "
+        print(f"{name:<44} {seconds * 1000:9.3f} {ratio:>8} {cpu * 1000:12.3f} "
               f"{mem['main_mb']:13.0f} / {mem['worker_mb']:<10.0f}")
-    if targets:
-        a, b, d, e = per_file["a"], per_file["b"], per_file["d"], per_file["e"]
-        checks = [
-            (f"(d) >= {TARGET_VS_FULL:g}x faster than (a)", a / d, a / d >= TARGET_VS_FULL),
-            (f"(d) within {TARGET_VS_DECODE:g}x of (b)/{cores} cores", d / (b / cores),
-             d / (b / cores) <= TARGET_VS_DECODE),
-            (f"(e) >= {TARGET_RESCAN:g}x faster than (d)", d / e if e > 0 else float("inf"),
-             e <= 0 or d / e >= TARGET_RESCAN),
-        ]
-        for text, value, ok in checks:
-            print(f"  target {text:<40} measured {value:7.2f}x  {'met' if ok else 'MISSED'}")
-        # on a machine shared with other work the wall-clock gain of more jobs is not ours to see;
-        # CPU time per file is, so say what the cores would give if they were free
-        a_cpu, d_cpu, b_cpu = cpu_per_file["a"], cpu_per_file["d"], cpu_per_file["b"]
-        print(f"  from CPU time (an estimate for {cores} free cores): (d) {a_cpu / (d_cpu / cores):.2f}x "
-              f"faster than (a), {d_cpu / b_cpu:.2f}x of (b)/{cores} cores")
+    return per_file, cpu_per_file
 
 
-def _memory_flat(sizes, work: Path, jobs: int):
+def _targets(per_file, cpu_per_file, rescan, cores: int):
+    """The issue's three targets, judged on the photos; the rescan on ``rescan = (files, s/file)``."""
+    a, b, d = per_file["a"], per_file["b"], per_file["d"]
+    files, e = rescan
+    print("\ntargets")
+    checks = [
+        (f"(d) >= {TARGET_VS_FULL:g}x faster than (a)", a / d, a / d >= TARGET_VS_FULL),
+        (f"(d) within {TARGET_VS_DECODE:g}x of (b)/{cores} cores", d / (b / cores),
+         d / (b / cores) <= TARGET_VS_DECODE),
+        (f"(e) >= {TARGET_RESCAN:g}x faster than (d), rescan of {files:,} files", d / e if e > 0 else float("inf"),
+         e <= 0 or d / e >= TARGET_RESCAN),
+    ]
+    for text, value, ok in checks:
+        print(f"  {text:<58} measured {value:8.2f}x  {'met' if ok else 'MISSED'}")
+    # on a machine shared with other work the wall-clock gain of more jobs is not ours to see;
+    # CPU time per file is, so say what the cores would give if they were free
+    a_cpu, d_cpu, b_cpu = cpu_per_file["a"], cpu_per_file["d"], cpu_per_file["b"]
+    print(f"  from CPU time (an estimate for {cores} free cores): (d) {a_cpu / (d_cpu / cores):.2f}x "
+          f"faster than (a), {d_cpu / b_cpu:.2f}x of (b)/{cores} cores")
+
+
+def _memory_flat(sizes, work: Path, jobs: int, repeat: int):
+    """Peak memory of (d) and the rescan's cost on small-file trees; returns (files, s/file) of
+    the rescan of the largest."""
     print("\npeak memory of (d) on small files (160x120 JPEGs), and of the rescan")
     print(f"{'files':>8} {'scan: main / worker MB':>24} {'rescan ms/file':>16} {'rescan: main MB':>16}")
     empty = work / "empty"
     empty.mkdir(exist_ok=True)
+    rescan = None
     for n in sizes:
         root = work / f"small{n}"
         _make_tree(root, n, (160, 120), (("JPEG", "jpg"),), jobs)
         out = work / f"small{n}.csv"
         _, _, mem = _timed("scan", root, empty, out, jobs, 1)
-        rescan, _, mem_e = _timed("scan", root, empty, out, jobs, 3, rescan=True)
-        print(f"{n:>8} {mem['main_mb']:11.0f} / {mem['worker_mb']:<10.0f} {rescan * 1000:16.4f} "
+        seconds, _, mem_e = _timed("scan", root, empty, out, jobs, 3 * repeat, rescan=True)
+        print(f"{n:>8} {mem['main_mb']:11.0f} / {mem['worker_mb']:<10.0f} {seconds * 1000:16.4f} "
               f"{mem_e['main_mb']:16.0f}")
+        rescan = (n, seconds) if rescan is None or n > rescan[0] else rescan
         shutil.rmtree(root)
+    return rescan
 
 
 def _cpu_pressure() -> str:
@@ -262,16 +279,19 @@ def main(argv=None):
               f"(rescans best of {3 * args.repeat}); start-up measured on an empty tree and subtracted")
         photos = work / "photos"
         total = _make_tree(photos, args.n, size, (("JPEG", "jpg"),), cores)
-        _table(f"{args.n} photo-like JPEGs {size[0]}x{size[1]}, quality 85-95, mean "
-               f"{total / args.n / 1e6:.2f} MB", photos, work, args.jobs, args.repeat, cores, targets=True)
+        per_file, cpu_per_file = _table(
+            f"{args.n} photo-like JPEGs {size[0]}x{size[1]}, quality 85-95, mean {total / args.n / 1e6:.2f} MB",
+            photos, work, args.jobs, args.repeat, cores)
         if args.mixed:
             mixed = work / "mixed"
             total = _make_tree(mixed, args.mixed, mixed_size, MIXED_FORMATS, cores)
             _table(f"{args.mixed} mixed-format files {mixed_size[0]}x{mixed_size[1]} "
                    f"({', '.join(f for f, _ in MIXED_FORMATS)}), mean {total / args.mixed / 1e6:.2f} MB",
-                   mixed, work, args.jobs, args.repeat, cores, targets=False)
+                   mixed, work, args.jobs, args.repeat, cores)
+        rescan = (args.n, per_file["e"])
         if args.small:
-            _memory_flat([int(v) for v in args.small.split(",")], work, args.jobs)
+            rescan = _memory_flat([int(v) for v in args.small.split(",")], work, args.jobs, args.repeat)
+        _targets(per_file, cpu_per_file, rescan, cores)
         print(f"\nload average at end {' '.join(f'{v:.1f}' for v in os.getloadavg())}, "
               f"CPU pressure {_cpu_pressure()}")
     finally:

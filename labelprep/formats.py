@@ -128,11 +128,14 @@ _SOS, _EOI = 0xDA, 0xD9
 
 
 def _jpeg_damage(data: bytes) -> tuple[str, str]:
-    # T.81 B.2: SOI, then marker segments (FFxx and a 2-byte length that counts itself); each
-    # SOS segment is followed by entropy-coded data; EOI (FFD9) ends the image. Walking segment
-    # by segment skips embedded thumbnails (inside APP1), whose own EOI must not count.
-    # Stray bytes between segments are skipped to the next marker, as libjpeg does, since
-    # decoders still read such files.
+    # T.81 B.2: SOI, then marker segments (FFxx and a 2-byte length that counts itself) up to
+    # the first SOS; entropy-coded data (and, in a progressive file, more segments and scans)
+    # follows, and EOI (FFD9) ends the image. The header is walked segment by segment, which
+    # skips embedded thumbnails (inside APP1) whose own EOI must not count. Stray bytes between
+    # segments are skipped to the next marker, as libjpeg does, since decoders still read such
+    # files. After the first SOS one search from the end suffices: FF D9 cannot occur inside
+    # entropy-coded data (B.1.1.5), so any FFD9 there is the end marker; walking every marker of
+    # a multi-megabyte scan instead cost as much as a twentieth of the reduced decode.
     pos, end = 2, len(data)
     while True:
         found = _JPEG_NEXT_MARKER.search(data, pos)
@@ -153,6 +156,10 @@ def _jpeg_damage(data: bytes) -> tuple[str, str]:
         stop = pos + 2 + length
         if stop > end:
             return TRUNCATED, f"marker segment FF{code:02X} at byte {pos} runs past the end of the file"
+        if code == _SOS:
+            if data.rfind(b"\xff\xd9", stop) < 0:
+                return TRUNCATED, "no end-of-image marker (FFD9) after the scan data: the data stops early"
+            return "", ""
         pos = stop
 
 

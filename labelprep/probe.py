@@ -39,9 +39,10 @@ def blank_facts() -> dict:
     """The facts of a file about which nothing is known yet."""
     return {"bytes": None, "mtime_ns": None, "sha256": "", "format": "", "width": None,
             "height": None, "mode": "", "bits": None, "frames": None, "has_alpha": None,
-            "has_gps": None, "spread": None, "fault": "", "fault_detail": "",
+            "has_gps": None, "fault": "", "fault_detail": "",
             # the columns of hashing.fingerprint, so every row has the same keys (a rescan's cache)
-            "phash": "", "phash_c80": "", "phash_c70": "", "phash_mirror": "", "detail": None}
+            "phash": "", "phash_c80": "", "phash_c70": "", "phash_mirror": "", "detail": None,
+            "spread": None}
 
 
 class _OutOfTime(BaseException):
@@ -93,8 +94,8 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
     -------
     dict
         ``bytes``, ``mtime_ns``, ``sha256``, ``format``, ``width``, ``height`` (after EXIF
-        orientation), ``mode``, ``bits``, ``frames``, ``has_alpha``, ``has_gps``, ``spread``, ``fault``,
-        ``fault_detail`` and the hash columns of :func:`labelprep.hashing.fingerprint`.
+        orientation), ``mode``, ``bits``, ``frames``, ``has_alpha``, ``has_gps``, ``fault``,
+        ``fault_detail`` and the columns of :func:`labelprep.hashing.fingerprint`.
         ``fault`` is one of ``""``, ``"empty"``, ``"unreadable"``, ``"not-image"``,
         ``"truncated"``, ``"corrupt"``, ``"pixel-limit"``, ``"timeout"``.
 
@@ -205,9 +206,7 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
                 return
             small = _reduce(im)
             small = ImageOps.exif_transpose(small) if orientation != 1 else small
-            small = _eight_bit(small)  # before both the spread and the hashes
-            facts["spread"] = _spread(small)
-            facts.update(fingerprint(small))
+            facts.update(fingerprint(_eight_bit(small)))
 
 
 def draft_for_hashing(im) -> None:
@@ -223,7 +222,7 @@ def draft_for_hashing(im) -> None:
 
 def preload() -> None:
     """Import, in this process, everything decoding a file needs (Pillow and its format plugins,
-    numpy, scipy's DCT), by probing a small JPEG made in memory.
+    numpy), by probing a small JPEG made in memory.
 
     Worker processes forked afterwards inherit the modules instead of each importing them again:
     about 0.4 s of CPU saved per worker, which on a few hundred files is several percent.
@@ -283,15 +282,6 @@ def _eight_bit(im):
     low, span = float(values.min()), float(values.max() - values.min())
     scaled = (values - low) * (255 / span) if span > 0 else np.zeros_like(values)
     return Image.fromarray(scaled.round().astype(np.uint8))
-
-
-def _spread(im) -> float:
-    """Luminance standard deviation on a 64-pixel thumbnail: close to 0 for a blank image."""
-    import numpy as np
-
-    gray = im.convert("RGBA").convert("L") if im.mode in ("P", "PA") else im.convert("L")
-    gray = gray.resize((64, 64))
-    return round(float(np.asarray(gray, dtype=np.float64).std()), 4)
 
 
 def _one_line(exc: BaseException) -> str:

@@ -23,6 +23,20 @@ def test_help_imports_nothing_heavy():
     assert out.stdout.strip() == "[]"
 
 
+def test_scan_does_not_import_scipy(tmp_path):
+    """Importing scipy.fft costs about half a second per process: scanning needs numpy and
+    Pillow only (the DCT is numpy's), so scans and their workers start fast."""
+    from PIL import Image
+
+    (tmp_path / "a").mkdir()
+    Image.new("RGB", (300, 200), (10, 90, 200)).save(tmp_path / "a" / "x.jpg")
+    code = ("import sys; from labelprep.cli import main; "
+            f"main(['scan', {str(tmp_path)!r}, '-o', {str(tmp_path / 'm.csv')!r}, '--jobs', '1', '-q'], "
+            "standalone_mode=False); print(sorted({m.split('.')[0] for m in sys.modules} & {'scipy', 'imagehash'}))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip().splitlines()[-1] == "[]"
+
+
 def test_python_dash_m_works():
     out = subprocess.run([sys.executable, "-m", "labelprep", "--version"], capture_output=True, text=True)
     assert out.returncode == 0

@@ -106,6 +106,13 @@ class TestDamageJpeg:
         assert damage("jpeg", whole) == ("", "")
         assert damage("jpeg", cut)[0] == TRUNCATED
 
+    def test_progressive_cut_between_scans(self):
+        """A progressive file cut right after one of its scans (at a later SOS marker, T.81
+        annex G) ends without EOI: truncated, although every segment before the cut is whole."""
+        data = _pillow_bytes("JPEG", progressive=True)
+        second_scan = data.index(b"\xff\xda", data.index(b"\xff\xda") + 2)
+        assert damage("jpeg", data[:second_scan])[0] == TRUNCATED
+
     def test_missing_end_marker(self):
         """A file without its final EOI is truncated."""
         kind, why = damage("jpeg", _pillow_bytes("JPEG")[:-2])

@@ -90,6 +90,37 @@ class TestDetail:
         assert fp["phash"] == str(imagehash.phash(Image.new("RGB", (64, 64), (120, 130, 140))))
 
 
+class TestTransform:
+    def test_dct_matrix_equals_scipy(self, camera):
+        """The numpy DCT-II products give scipy.fftpack.dct's coefficients (the transform
+        imagehash.phash calls; scipy as the reference implementation)."""
+        from scipy.fftpack import dct
+
+        from labelprep.hashing import _dct
+
+        gray = camera.convert("L")
+        thumb = np.asarray(gray.resize((32, 32), Image.Resampling.LANCZOS), dtype=np.float64)
+        reference = dct(dct(thumb, axis=0), axis=1)
+        np.testing.assert_allclose(_dct(gray, None), reference, rtol=1e-9, atol=1e-6)
+
+    @pytest.mark.parametrize("name", ["camera", "astronaut", "coins"])
+    def test_spread_is_the_thumbnail_standard_deviation(self, name):
+        """Parseval's theorem for the orthonormal DCT: the AC energy is the thumbnail's variance
+        times its 1024 pixels, so ``spread`` equals numpy's standard deviation of that thumbnail."""
+        img = Image.fromarray(getattr(skimage.data, name)())
+        thumb = img.convert("L").resize((32, 32), Image.Resampling.LANCZOS)
+        expected = float(np.asarray(thumb, dtype=np.float64).std())
+        assert fingerprint(img)["spread"] == pytest.approx(expected, abs=1e-4)
+
+    @pytest.mark.parametrize("value", [0, 1, 128, 255])
+    def test_flat_images_keep_imagehash_value(self, value):
+        """A flat image's AC coefficients are exactly zero in scipy's transform; rounding noise of
+        the matrix products must not turn them into hash bits (imagehash as the reference)."""
+        img = Image.new("L", (40, 30), value)
+        fp = fingerprint(img)
+        assert fp["phash"] == str(imagehash.phash(img)) and fp["spread"] == 0.0
+
+
 def test_rejects_non_image():
     with pytest.raises(TypeError, match="PIL.Image.Image, got ndarray"):
         fingerprint(np.zeros((8, 8)))
