@@ -99,7 +99,7 @@ def _pooled(func, items, jobs: int, chunksize: int):
     from concurrent.futures import ProcessPoolExecutor
     from concurrent.futures.process import BrokenProcessPool
 
-    pool = ProcessPoolExecutor(max_workers=jobs, initializer=_leave_interrupts_to_parent)
+    pool = ProcessPoolExecutor(max_workers=jobs, initializer=_worker_setup)
     pending: deque = deque()
     try:
         while True:
@@ -176,15 +176,32 @@ def _on_cluster(func, items, address, chunksize: int, shared=_NOTHING):
         client.close()
 
 
-def _leave_interrupts_to_parent():
+def _worker_setup():
     """Workers ignore Ctrl-C (sent to the whole process group): the parent stops the pool and
     cancels queued work, so an interrupt ends cleanly instead of in one traceback per worker.
     SIGTERM gets its default back (a forked worker inherits the command line's handler), so a
-    pool that terminates its workers ends them at once."""
+    pool that terminates its workers ends them at once.
+
+    A worker also ends when its parent dies without stopping the pool (SIGKILL, the out-of-memory
+    killer): it would otherwise wait forever on a queue whose other end it holds itself. Linux
+    delivers a chosen signal on the parent's death (prctl PR_SET_PDEATHSIG); elsewhere nothing
+    is set.
+    """
     import signal
+    import sys
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if sys.platform.startswith("linux"):
+        import ctypes
+
+        _PR_SET_PDEATHSIG = 1  # linux/prctl.h
+        ctypes.CDLL(None).prctl(_PR_SET_PDEATHSIG, signal.SIGTERM)
+        import multiprocessing
+
+        parent = multiprocessing.parent_process()
+        if parent is not None and not parent.is_alive():  # it died before the request took effect
+            os._exit(1)
 
 
 def _with_shared(func, shared, item):

@@ -144,6 +144,24 @@ def test_killed_worker_is_one_line_then_resume(tree, reference, tmp_path):
     assert out.read_bytes() == expected
 
 
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="parent-death signal is Linux's prctl")
+def test_workers_end_when_the_scan_is_killed(tree, tmp_path):
+    """SIGKILL to the scan alone (the out-of-memory killer's choice): its workers must not live
+    on, waiting for work from a parent that is gone."""
+    proc = _start_scan(tree, tmp_path / "m.csv")
+    deadline = time.monotonic() + 60
+    while len(_children(proc.pid)) < 2 and time.monotonic() < deadline:
+        time.sleep(0.02)
+    workers = _children(proc.pid)
+    proc.kill()
+    proc.wait(timeout=60)  # not communicate(): live workers would hold its pipes open
+    if not workers:
+        pytest.fail("the scan started no worker process")
+    tally(faults=1)
+    _assert_session_ended(proc)
+    proc.communicate(timeout=60)
+
+
 def _die(item):
     if item == 5:
         os.kill(os.getpid(), signal.SIGKILL)
