@@ -409,8 +409,9 @@ def prepare(root, out, fail_on, quiet, **options):
 def _print_outcome(m, summary, out: Path, quiet: bool):
     from .reports import terminal_table
 
-    _say(quiet, terminal_table(summary))
-    _say(quiet, "\nfiles behind each issue (first three; the manifest lists them all):")
+    # the issues are listed once, with their counts and first files, after the tables
+    _say(quiet, terminal_table(summary, issues=False))
+    _say(quiet, "\nissues, with the first three files each (the manifest lists them all):")
     _print_issues(m, quiet)
     _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
 

@@ -108,3 +108,33 @@ class TestScanCommand:
         assert result.exit_code == 2
         assert "line 2" in result.output and "escapes the root" in result.output
         assert not (tmp_path / "m.csv").exists()
+
+
+class TestDemoCommand:
+    def test_demo_generates_runs_and_lists_each_issue_once(self, runner, tmp_path):
+        """The Quick start's command: the photos, the three outputs, the tables, and every issue
+        code of the manifest listed once, with its count (no second table repeating the counts)."""
+        from labelprep import codes
+
+        folder = tmp_path / "demo"
+        result = runner.invoke(main, ["demo", str(folder), "--jobs", "1"], catch_exceptions=False)
+        assert result.exit_code == 0, result.output
+        for name in ("manifest.csv", "report.json", "report.html"):
+            assert (folder / "out" / name).is_file()
+        m = manifest.read(folder / "out" / "manifest.csv")
+        tally = codes.counts(m["issues"])
+        assert tally  # the demo plants problems
+        lines = result.output.splitlines()
+        for code, n in tally.items():
+            headers = [line for line in lines if line.split()[:1] == [code]]
+            assert len(headers) == 1, (code, headers)
+            assert headers[0].split()[2] == str(n)
+        assert "22 planted problems" in result.output and "train" in result.output
+
+    def test_demo_does_not_replace_photos_it_did_not_make(self, runner, tmp_path):
+        photos = tmp_path / "photos"
+        photos.mkdir()
+        (photos / "mine.jpg").write_bytes(b"a user's file")
+        result = runner.invoke(main, ["demo", str(tmp_path), "-q"])
+        assert result.exit_code != 0 and "--force" in result.output and "Traceback" not in result.output
+        assert (photos / "mine.jpg").read_bytes() == b"a user's file"

@@ -92,8 +92,11 @@ def to_json(summary: dict) -> str:
     return _json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n"
 
 
-def terminal_table(summary: dict) -> str:
+def terminal_table(summary: dict, *, issues: bool = True) -> str:
     """A plain-text view of ``summary`` for a terminal: totals, classes per split, issues.
+
+    ``issues=False`` leaves out the table of issue counts, for a caller that lists the issues
+    with their files instead.
 
     Examples
     --------
@@ -104,7 +107,7 @@ def terminal_table(summary: dict) -> str:
     """
     from .text import terminal
 
-    return terminal(summary)
+    return terminal(summary, issues=issues)
 
 
 def _complete(manifest):

@@ -5,11 +5,11 @@ from __future__ import annotations
 UNASSIGNED = "unassigned"
 
 
-def terminal(summary: dict) -> str:
+def terminal(summary: dict, *, issues: bool = True) -> str:
     """Aligned plain-text tables for a terminal (see :func:`labelprep.reports.terminal_table`)."""
     parts = [_headline(summary), "", _table(*_class_rows(summary), markdown=False)]
     parts += ["", _table(*_balance_rows(summary), markdown=False)]
-    if summary["issues"]:
+    if issues and summary["issues"]:
         parts += ["", _table(*_issue_rows(summary), markdown=False)]
     parts += ["", _duplicates_line(summary)]
     parts += [f"warning: {line}" for line in _warning_lines(summary)]
