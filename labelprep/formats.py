@@ -84,6 +84,73 @@ def format_of_extension(name: str) -> str:
     return _FORMAT_OF_EXTENSION.get(name[dot:].lower(), "") if dot >= 0 else ""
 
 
+def header_size(fmt: str, data: bytes):
+    """``(width, height)`` as the file's header declares them, without a decoder; None when the
+    format is not one read here or the header is cut short or gives no size.
+
+    The pixel budget is judged on this before Pillow opens the file, so a file claiming a huge
+    size gets its size in the manifest whatever Pillow's own limit is.
+
+    Examples
+    --------
+    >>> header_size("png", PNG_SIGNATURE + png_chunk(b"IHDR", struct.pack(">IIBBBBB", 640, 480, 8, 2, 0, 0, 0)))
+    (640, 480)
+    """
+    try:
+        if fmt == "png":
+            # PNG specification 11.2.2: IHDR, the first chunk, starts with width and height
+            if data[12:16] == b"IHDR":
+                return struct.unpack(">II", data[16:24])
+        elif fmt == "gif":
+            # GIF89a section 18: logical screen width and height after the 6-byte header
+            return struct.unpack("<HH", data[6:10])
+        elif fmt == "bmp":
+            # Microsoft BITMAPCOREHEADER (12 bytes: 16-bit sizes) or BITMAPINFOHEADER and later
+            # (signed 32-bit; a negative height means rows stored top-down)
+            if struct.unpack("<I", data[14:18])[0] == 12:
+                return struct.unpack("<HH", data[18:22])
+            width, height = struct.unpack("<ii", data[18:26])
+            return abs(width), abs(height)
+        elif fmt == "webp":
+            return _webp_size(data)
+        elif fmt == "jpeg":
+            return _jpeg_size(data)
+    except struct.error:  # a header shorter than its fields
+        return None
+    return None
+
+
+def _webp_size(data: bytes):
+    # RFC 9649: the first chunk after "RIFF" size "WEBP" is VP8, VP8L or VP8X
+    chunk = data[12:16]
+    if chunk == b"VP8X":       # 2.7: canvas width and height minus one, 24 bits each, at 24
+        return (int.from_bytes(data[24:27], "little") + 1, int.from_bytes(data[27:30], "little") + 1)
+    if chunk == b"VP8L" and data[20:21] == b"\x2f":  # 3.2: signature, then 14-bit sizes minus one
+        bits = int.from_bytes(data[21:25], "little")
+        return ((bits & 0x3FFF) + 1, ((bits >> 14) & 0x3FFF) + 1)
+    if chunk == b"VP8 " and data[23:26] == b"\x9d\x01\x2a":  # RFC 6386 9.1: start code, 14-bit sizes
+        width, height = struct.unpack("<HH", data[26:30])
+        return width & 0x3FFF, height & 0x3FFF
+    return None
+
+
+# T.81 table B.1: SOF0-SOF15 carry the frame size, except C4 (DHT), C8 (reserved) and CC (DAC)
+_JPEG_SOF = frozenset(range(0xC0, 0xD0)) - {0xC4, 0xC8, 0xCC}
+
+
+def _jpeg_size(data: bytes):
+    # T.81 B.2.2: the frame header is precision (1 byte), then number of lines and samples per
+    # line (2 bytes each); a height of 0 is defined later by a DNL marker: not known here
+    try:
+        for code, pos, _ in _jpeg_segments(data):
+            if code in _JPEG_SOF:
+                height, width = struct.unpack(">HH", data[pos + 5:pos + 9])
+                return (width, height) if height else None
+    except _Damage:
+        pass
+    return None
+
+
 TRUNCATED = "truncated"
 CORRUPT = "corrupt"
 
@@ -127,40 +194,63 @@ _JPEG_STANDALONE = frozenset({0x01, 0xD8, *range(0xD0, 0xD8)})  # T.81 B.1.1.3: 
 _SOS, _EOI = 0xDA, 0xD9
 
 
-def _jpeg_damage(data: bytes) -> tuple[str, str]:
-    # T.81 B.2: SOI, then marker segments (FFxx and a 2-byte length that counts itself) up to
-    # the first SOS; entropy-coded data (and, in a progressive file, more segments and scans)
-    # follows, and EOI (FFD9) ends the image. The header is walked segment by segment, which
-    # skips embedded thumbnails (inside APP1) whose own EOI must not count. Stray bytes between
-    # segments are skipped to the next marker, as libjpeg does, since decoders still read such
-    # files. After the first SOS one search from the end suffices: FF D9 cannot occur inside
-    # entropy-coded data (B.1.1.5), so any FFD9 there is the end marker; walking every marker of
-    # a multi-megabyte scan instead cost as much as a twentieth of the reduced decode.
+class _Damage(Exception):
+    def __init__(self, kind: str, why: str):
+        super().__init__(why)
+        self.kind, self.why = kind, why
+
+
+def _jpeg_segments(data: bytes):
+    """``(code, start, stop)`` of each marker up to the first SOS or EOI, the last one included.
+
+    T.81 B.2: SOI, then marker segments (FFxx and a 2-byte length that counts itself). Walking
+    segment by segment skips embedded thumbnails (inside APP1), whose own markers must not count.
+    Stray bytes between segments are skipped to the next marker, as libjpeg does, since decoders
+    still read such files. Raises :class:`_Damage` for a segment cut off or with a bad length.
+    """
     pos, end = 2, len(data)
     while True:
         found = _JPEG_NEXT_MARKER.search(data, pos)
         if found is None:
-            return TRUNCATED, "no end-of-image marker (FFD9): the data stops early"
+            return
         pos = found.start()
         code = data[pos + 1]
-        if code == _EOI:
-            return "", ""
         if code in _JPEG_STANDALONE:
             pos += 2
             continue
+        if code == _EOI:
+            yield code, pos, pos + 2
+            return
         if pos + 4 > end:
-            return TRUNCATED, f"marker FF{code:02X} at byte {pos} is cut off"
+            raise _Damage(TRUNCATED, f"marker FF{code:02X} at byte {pos} is cut off")
         length = (data[pos + 2] << 8) | data[pos + 3]
         if length < 2:
-            return CORRUPT, f"marker segment FF{code:02X} at byte {pos} declares length {length} (T.81 needs >= 2)"
+            raise _Damage(CORRUPT, f"marker segment FF{code:02X} at byte {pos} declares length {length} (T.81 needs >= 2)")
         stop = pos + 2 + length
         if stop > end:
-            return TRUNCATED, f"marker segment FF{code:02X} at byte {pos} runs past the end of the file"
+            raise _Damage(TRUNCATED, f"marker segment FF{code:02X} at byte {pos} runs past the end of the file")
+        yield code, pos, stop
         if code == _SOS:
-            if data.rfind(b"\xff\xd9", stop) < 0:
-                return TRUNCATED, "no end-of-image marker (FFD9) after the scan data: the data stops early"
-            return "", ""
+            return
         pos = stop
+
+
+def _jpeg_damage(data: bytes) -> tuple[str, str]:
+    # After the first SOS, entropy-coded data (and in a progressive file more segments and
+    # scans) runs to EOI (FFD9). FF D9 cannot occur inside entropy-coded data (B.1.1.5), so one
+    # search from the end finds the end marker; walking every marker of a multi-megabyte scan
+    # instead cost as much as a twentieth of the reduced decode.
+    try:
+        for code, _, stop in _jpeg_segments(data):
+            if code == _EOI:
+                return "", ""
+            if code == _SOS:
+                if data.rfind(b"\xff\xd9", stop) < 0:
+                    return TRUNCATED, "no end-of-image marker (FFD9) after the scan data: the data stops early"
+                return "", ""
+    except _Damage as damaged:
+        return damaged.kind, damaged.why
+    return TRUNCATED, "no end-of-image marker (FFD9): the data stops early"
 
 
 def png_chunk(ctype: bytes, payload: bytes) -> bytes:

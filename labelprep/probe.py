@@ -158,15 +158,27 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
 
     from .hashing import fingerprint
 
+    declared = formats.header_size(fmt, data)
+    if declared is not None and declared[0] * declared[1] > max_pixels:
+        # judged on the header alone, before Pillow: its own limit would refuse the largest
+        # files without saying their size
+        facts["width"], facts["height"] = declared
+        facts["fault"], facts["fault_detail"] = "pixel-limit", _over_budget(*declared, max_pixels)
+        return
     with warnings.catch_warnings():
         # the library never prints: Pillow's warnings are silenced, both the decompression-bomb
-        # one (the pixel budget below replaces it; an error above twice its limit still reaches
-        # the except clause as a pixel-limit fault) and its notes on damaged files
+        # one (the pixel budget replaces it) and its notes on damaged files
         warnings.simplefilter("ignore")
         try:
             im = Image.open(io.BytesIO(data))
         except Image.DecompressionBombError as exc:
-            facts["fault"], facts["fault_detail"] = "pixel-limit", _one_line(exc)
+            # over twice Pillow's Image.MAX_IMAGE_PIXELS, which Pillow refuses whatever our budget
+            facts["fault"] = "pixel-limit"
+            facts["fault_detail"] = (f"{declared[0]}x{declared[1]} is within the budget of {max_pixels:,} pixels but "
+                                     f"over Pillow's own limit ({2 * Image.MAX_IMAGE_PIXELS:,})"
+                                     if declared else _one_line(exc))
+            if declared:
+                facts["width"], facts["height"] = declared
             return
         except Exception as exc:
             # a header cut short or failing its checksum is the better explanation when there is one
@@ -181,9 +193,8 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
             facts["mode"] = im.mode
             facts["bits"] = _bits(fmt, data, im.mode)
             facts["has_alpha"] = im.mode in _ALPHA_MODES or "transparency" in im.info
-            if width * height > max_pixels:
-                facts["fault"] = "pixel-limit"
-                facts["fault_detail"] = f"{width}x{height} = {width * height:,} pixels, budget {max_pixels:,}"
+            if width * height > max_pixels:  # a format whose header is not read by formats.header_size
+                facts["fault"], facts["fault_detail"] = "pixel-limit", _over_budget(width, height, max_pixels)
                 return
             kind, why = formats.damage(fmt, data)
             if kind:  # no time spent decoding pixels that are not all there
@@ -282,6 +293,10 @@ def _eight_bit(im):
     low, span = float(values.min()), float(values.max() - values.min())
     scaled = (values - low) * (255 / span) if span > 0 else np.zeros_like(values)
     return Image.fromarray(scaled.round().astype(np.uint8))
+
+
+def _over_budget(width: int, height: int, max_pixels: int) -> str:
+    return f"{width}x{height} = {width * height:,} pixels, budget {max_pixels:,}"
 
 
 def _one_line(exc: BaseException) -> str:

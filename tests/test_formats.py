@@ -9,7 +9,7 @@ import zlib
 import pytest
 from PIL import Image
 
-from labelprep.formats import (CORRUPT, PNG_SIGNATURE, TRUNCATED, damage, format_of_extension,
+from labelprep.formats import (CORRUPT, PNG_SIGNATURE, TRUNCATED, damage, format_of_extension, header_size,
                                png_chunk, sniff)
 
 
@@ -76,6 +76,42 @@ class TestFormatOfExtension:
     def test_names(self, name, expected):
         """Known extensions map to their format; unknown ones to the empty string."""
         assert format_of_extension(name) == expected
+
+
+class TestHeaderSize:
+    """Sizes read from the header alone agree with Pillow's decoder (the reference library)."""
+
+    @pytest.mark.parametrize("fmt, mode, kwargs", [
+        ("JPEG", "RGB", {}), ("JPEG", "RGB", {"progressive": True}), ("PNG", "RGB", {}),
+        ("GIF", "RGB", {}), ("BMP", "RGB", {}), ("WEBP", "RGB", {"quality": 80}),
+        ("WEBP", "RGB", {"lossless": True}),
+        ("WEBP", "RGBA", {"quality": 80}),  # lossy with alpha: RFC 9649 2.7, the extended (VP8X) header
+    ])
+    @pytest.mark.parametrize("size", [(40, 30), (1, 1), (613, 17)])
+    def test_agrees_with_pillow(self, fmt, mode, kwargs, size):
+        buf = io.BytesIO()
+        Image.new(mode, size, (10, 200, 30, 100)[:len(mode)]).save(buf, fmt, **kwargs)
+        data = buf.getvalue()
+        with Image.open(io.BytesIO(data)) as im:
+            expected = im.size
+        if fmt == "WEBP":
+            assert data[12:16] == {"RGBA": b"VP8X", "RGB": b"VP8L" if "lossless" in kwargs else b"VP8 "}[mode]
+        assert header_size(fmt.lower(), data) == expected
+
+    def test_jpeg_size_behind_an_exif_thumbnail(self):
+        """The frame header (T.81 B.2.2) of the image, not that of a thumbnail inside APP1."""
+        thumb = _pillow_bytes("JPEG")  # 40 x 30
+        buf = io.BytesIO()
+        Image.new("RGB", (300, 200)).save(buf, "JPEG")
+        main = buf.getvalue()
+        app = b"\xff\xe1" + struct.pack(">H", len(thumb) + 2) + thumb
+        assert header_size("jpeg", main[:2] + app + main[2:]) == (300, 200)
+
+    def test_cut_or_unknown_headers_give_none(self):
+        assert header_size("png", PNG_SIGNATURE + b"\x00\x00") is None
+        assert header_size("jpeg", b"\xff\xd8\xff\xe0\x00") is None
+        assert header_size("tiff", b"II*\x00" + bytes(20)) is None
+        assert header_size("webp", b"RIFF\x00\x00\x00\x00WEBPVP8?") is None
 
 
 class TestDamageJpeg:

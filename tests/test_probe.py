@@ -140,6 +140,17 @@ class TestPixelBudget:
         assert facts["fault_detail"] == "10000x10000 = 100,000,000 pixels, budget 89,478,485"
         assert (facts["width"], facts["height"]) == (10_000, 10_000)
 
+    def test_size_of_a_file_pillow_refuses_to_open(self, tmp_path):
+        """Over twice Pillow's limit Image.open raises; the header still gives the row its size."""
+        facts = _probe_bytes(tmp_path, _hand_png(50_000, 40_000), "x.png")
+        assert (facts["fault"], facts["width"], facts["height"]) == ("pixel-limit", 50_000, 40_000)
+        assert facts["fault_detail"] == "50000x40000 = 2,000,000,000 pixels, budget 89,478,485"
+
+    def test_budget_above_pillows_own_limit_says_so(self, tmp_path):
+        facts = _probe_bytes(tmp_path, _hand_png(20_000, 10_000), "x.png", max_pixels=10**9)
+        assert facts["fault"] == "pixel-limit" and (facts["width"], facts["height"]) == (20_000, 10_000)
+        assert "within the budget" in facts["fault_detail"] and "Pillow" in facts["fault_detail"]
+
     def test_custom_budget(self, tmp_path):
         """A smaller budget flags a real image that is over it."""
         facts = _probe_bytes(tmp_path, encode(textured((96, 64)), "PNG"), "x.png", max_pixels=5000)
