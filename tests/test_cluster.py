@@ -22,7 +22,7 @@ distributed = pytest.importorskip("distributed")
 @pytest.fixture(scope="module")
 def address():
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  host="127.0.0.1", dashboard_address=None) as cluster:
+                                  host="127.0.0.1", dashboard_address=":0") as cluster:
         yield cluster.scheduler_address
 
 
@@ -119,7 +119,7 @@ def test_unreachable_scheduler_is_an_input_error(monkeypatch):
 def test_scheduler_without_workers_is_an_input_error(monkeypatch):
     monkeypatch.setattr(parallel, "CONNECT_SECONDS", 1)
     with distributed.LocalCluster(n_workers=0, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as empty:
+                                  dashboard_address=":0") as empty:
         with pytest.raises(InputError, match="has no workers"):
             list(map_ordered(abs, [1], cluster=empty.scheduler_address))
 
