@@ -79,7 +79,8 @@ _cluster = click.option("--cluster", metavar="ADDRESS", default=None,
                              "near-pair search. Needs labelprep[cluster].")
 _max_pixels = click.option("--max-pixels", type=click.IntRange(min=1), default=defaults.MAX_PIXELS,
                            show_default=True,
-                           help="Pixel budget per image; larger images are flagged and not decoded.")
+                           help="Pixel budget per image; larger images are flagged and not decoded. "
+                                "Pillow itself refuses images over twice its default, whatever the budget.")
 SCAN_OPTIONS = _stack(
     click.option("--layout", type=click.Choice(["auto", "folders", "split-folders", "table"]),
                  default="auto", show_default=True,
