@@ -187,6 +187,7 @@ def _worker_setup():
     delivers a chosen signal on the parent's death (prctl PR_SET_PDEATHSIG); elsewhere nothing
     is set.
     """
+    import multiprocessing
     import signal
     import sys
 
@@ -195,10 +196,8 @@ def _worker_setup():
     if sys.platform.startswith("linux"):
         import ctypes
 
-        _PR_SET_PDEATHSIG = 1  # linux/prctl.h
-        ctypes.CDLL(None).prctl(_PR_SET_PDEATHSIG, signal.SIGTERM)
-        import multiprocessing
-
+        pr_set_pdeathsig = 1  # linux/prctl.h
+        ctypes.CDLL(None).prctl(pr_set_pdeathsig, signal.SIGTERM)
         parent = multiprocessing.parent_process()
         if parent is not None and not parent.is_alive():  # it died before the request took effect
             os._exit(1)

@@ -236,7 +236,7 @@ def preload() -> None:
     numpy), by probing a small JPEG made in memory.
 
     Worker processes forked afterwards inherit the modules instead of each importing them again:
-    about 0.4 s of CPU saved per worker, which on a few hundred files is several percent.
+    about 0.2 s of CPU saved per worker, which on a few hundred files is a few percent.
     """
     from PIL import Image
 
