@@ -22,6 +22,7 @@ _SIGNATURES = [
     ("tiff", 0, b"II*\x00"),                      # TIFF 6.0 section 2: little-endian header, 42
     ("tiff", 0, b"MM\x00*"),                      # TIFF 6.0 section 2: big-endian header, 42
     ("jpeg2000", 0, b"\x00\x00\x00\x0cjP  \r\n\x87\n"),  # ISO/IEC 15444-1 annex I.5.1 signature box
+    ("jpeg2000", 0, b"\xff\x4f\xff\x51"),         # ISO/IEC 15444-1 A.4.1, A.5.1: a bare codestream, SOC then SIZ
     ("ico", 0, b"\x00\x00\x01\x00"),              # ICONDIR: reserved 0, type 1 (Microsoft ICO)
 ]
 
@@ -148,6 +149,46 @@ def _jpeg_size(data: bytes):
                 return (width, height) if height else None
     except _Damage:
         pass
+    return None
+
+
+def jpeg2000_levels(data: bytes):
+    """The number of wavelet decomposition levels of a JPEG 2000 image: how many times a decoder
+    can halve its resolution. None when the main header gives none (or is cut short).
+
+    ISO/IEC 15444-1: a JP2 file is a sequence of boxes (annex I.4: 4-byte length, 4-byte type;
+    length 1 means an 8-byte length follows, 0 means to the end), the codestream in the ``jp2c``
+    box; a bare codestream starts with SOC. In the main header (up to the first SOT), the COD
+    segment (A.6.1) gives the levels as the first byte of SPcod, after Lcod (2 bytes), Scod (1)
+    and SGcod (4).
+    """
+    pos = 0 if data[:2] == b"\xff\x4f" else _jp2_codestream(data)
+    if pos is None:
+        return None
+    pos += 2  # SOC has no length
+    while pos + 4 <= len(data) and data[pos] == 0xFF:
+        marker, length = data[pos + 1], (data[pos + 2] << 8) | data[pos + 3]
+        if marker == 0x52:  # COD
+            return data[pos + 9] if pos + 10 <= len(data) else None
+        if marker == 0x90 or length < 2:  # SOT: the main header ended without COD
+            return None
+        pos += 2 + length
+    return None
+
+
+def _jp2_codestream(data: bytes):
+    pos = 0
+    while pos + 8 <= len(data):
+        size, kind, head = int.from_bytes(data[pos:pos + 4], "big"), data[pos + 4:pos + 8], 8
+        if size == 1:
+            size, head = int.from_bytes(data[pos + 8:pos + 16], "big"), 16
+        elif size == 0:
+            size = len(data) - pos
+        if kind == b"jp2c":
+            return pos + head
+        if size < head:
+            return None
+        pos += size
     return None
 
 

@@ -206,10 +206,8 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
                 facts["width"], facts["height"] = height, width
             facts["frames"] = getattr(im, "n_frames", 1)
             facts["has_gps"] = bool(_POSITION_TAGS & exif.get_ifd(_GPS_IFD).keys())
-            if fmt == "jpeg":
-                draft_for_hashing(im)
             try:
-                im.load()
+                im = _load_small(im, fmt, data)
             except Exception as exc:
                 detail = _one_line(exc)
                 facts["fault"] = "truncated" if "truncated" in detail else "unreadable"
@@ -218,6 +216,39 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
             small = _reduce(im)
             small = ImageOps.exif_transpose(small) if orientation != 1 else small
             facts.update(fingerprint(_eight_bit(small)))
+
+
+def _load_small(im, fmt: str, data: bytes):
+    """``im`` decoded at the smallest scale the hashes need: a JPEG through draft mode, a JPEG 2000
+    with fewer resolution levels; other formats in full (then box-reduced by :func:`_reduce`).
+
+    A JPEG 2000 whose reduced decode fails (a tile may declare fewer levels than the main
+    header) is decoded again in full, so that an error reported is the file's own.
+    """
+    if fmt == "jpeg":
+        draft_for_hashing(im)
+    elif fmt == "jpeg2000":
+        levels = _jpeg2000_levels_to_skip(im.size, formats.jpeg2000_levels(data))
+        if levels:
+            im.reduce = levels  # Pillow's JPEG 2000 plugin: decode 1/2**levels of each side
+            try:
+                im.load()
+                return im
+            except Exception:
+                from PIL import Image
+
+                im = Image.open(io.BytesIO(data))
+    im.load()
+    return im
+
+
+def _jpeg2000_levels_to_skip(size, levels) -> int:
+    """The most resolution levels a JPEG 2000 decode may drop keeping the shorter side at least
+    :data:`HASH_SIDE`; each level halves both sides (ISO/IEC 15444-1 annex F)."""
+    skip = 0
+    while levels is not None and skip < levels and min(size) >> (skip + 1) >= HASH_SIDE:
+        skip += 1
+    return skip
 
 
 def draft_for_hashing(im) -> None:
@@ -264,8 +295,12 @@ def _reduce(im):
     mode = _REDUCE_AS.get(im.mode)
     if mode == "RGB" and "transparency" in im.info:
         mode = "RGBA"
+    from PIL import Image
+
     try:
-        return (im.convert(mode) if mode else im).reduce(factor)
+        # the base class's method: Pillow's JPEG 2000 plugin shadows reduce() with its
+        # resolution-level setting once that is set (see _load_small)
+        return Image.Image.reduce(im.convert(mode) if mode else im, factor)
     except ValueError:  # a mode reduce() does not know: the hash code resizes it itself
         return im
 

@@ -10,6 +10,7 @@ import pytest
 from PIL import Image
 
 from labelprep.formats import (CORRUPT, PNG_SIGNATURE, TRUNCATED, damage, format_of_extension, header_size,
+                               jpeg2000_levels,
                                png_chunk, sniff)
 
 
@@ -76,6 +77,27 @@ class TestFormatOfExtension:
     def test_names(self, name, expected):
         """Known extensions map to their format; unknown ones to the empty string."""
         assert format_of_extension(name) == expected
+
+
+@pytest.mark.skipif(not __import__("PIL.features").features.check("jpg_2000"), reason="no OpenJPEG")
+class TestJpeg2000Levels:
+    """OpenJPEG's num_resolutions is the decomposition levels plus one (ISO/IEC 15444-1 annex F:
+    NL levels give NL + 1 resolutions); the COD segment (A.6.1) records NL."""
+
+    @pytest.mark.parametrize("resolutions", [1, 2, 6])
+    @pytest.mark.parametrize("container", [True, False])
+    def test_levels_from_the_cod_segment(self, resolutions, container):
+        buf = io.BytesIO()
+        Image.new("RGB", (256, 256), (30, 60, 90)).save(buf, "JPEG2000", num_resolutions=resolutions,
+                                                        no_jp2=not container)
+        data = buf.getvalue()
+        assert sniff(data[:32]) == "jpeg2000"
+        assert jpeg2000_levels(data) == resolutions - 1
+
+    def test_cut_or_foreign_headers_give_none(self):
+        assert jpeg2000_levels(b"\x00\x00\x00\x0cjP  \r\n\x87\n") is None
+        assert jpeg2000_levels(b"\xff\x4f\xff\x51\x00") is None
+        assert jpeg2000_levels(b"\xff\x4f\xff\x90\x00\x0a" + bytes(8)) is None  # SOT before COD
 
 
 class TestHeaderSize:

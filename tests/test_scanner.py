@@ -133,6 +133,67 @@ class TestDraftDecoding:
         assert _reduce(im) is im
 
 
+needs_openjpeg = pytest.mark.skipif(not __import__("PIL.features").features.check("jpg_2000"),
+                                    reason="this Pillow has no JPEG 2000 codec (OpenJPEG)")
+
+
+def _jpeg2000(img, **kwargs) -> bytes:
+    buf = io.BytesIO()
+    img.save(buf, "JPEG2000", **kwargs)
+    return buf.getvalue()
+
+
+@needs_openjpeg
+class TestJpeg2000ReducedDecoding:
+    """JPEG 2000 decodes at fewer resolution levels (ISO/IEC 15444-1 annex F), like JPEG draft mode."""
+
+    @pytest.fixture
+    def photo(self):
+        # scikit-image's bundled coffee photograph, scaled to 2048 x 1600
+        import skimage.data
+
+        return Image.fromarray(skimage.data.coffee()).resize((2048, 1600), Image.BICUBIC)
+
+    @pytest.mark.parametrize("kwargs", [{}, {"no_jp2": True}, {"tile_size": (512, 512)}, {"num_resolutions": 2}])
+    def test_decoded_small_and_hashed_like_the_full_decode(self, tmp_path, photo, kwargs, monkeypatch):
+        """Reference: imagehash.phash of the fully decoded file; the stated bound is the JPEG one."""
+        path = tmp_path / "p.jp2"
+        path.write_bytes(_jpeg2000(photo, **kwargs))
+        from labelprep import hashing
+
+        seen = []
+        original = hashing.fingerprint
+
+        def spy(img):
+            seen.append(img.size)
+            return original(img)
+
+        monkeypatch.setattr(hashing, "fingerprint", spy)
+        facts = probe(path)
+        assert facts["fault"] == "" and (facts["width"], facts["height"]) == (2048, 1600)
+        with Image.open(path) as full:
+            reference = imagehash.phash(full)
+        assert imagehash.hex_to_hash(facts["phash"]) - reference <= FAST_PATH_MAX_BITS
+        # five levels: the decoder drops three (1600 -> 200; a fourth would go under HASH_SIDE);
+        # one level: the decoder halves, the box reduction does the rest (800 // 128 = 6)
+        assert seen == ([(171, 134)] if "num_resolutions" in kwargs else [(256, 200)])
+
+    def test_more_levels_claimed_than_decodable_falls_back_to_full(self, tmp_path, photo, monkeypatch):
+        path = tmp_path / "p.jp2"
+        path.write_bytes(_jpeg2000(photo, num_resolutions=2))  # one decomposition level
+        monkeypatch.setattr(formats, "jpeg2000_levels", lambda data: 5)
+        facts = probe(path)
+        assert facts["fault"] == "" and facts["phash"]
+
+    @pytest.mark.parametrize("keep", [0.3, 0.9, 0.99])
+    def test_cut_file_is_still_caught(self, tmp_path, photo, keep):
+        """The reduced decode still reads the whole codestream: a cut file is not clean."""
+        data = _jpeg2000(photo)
+        path = tmp_path / "cut.jp2"
+        path.write_bytes(data[: int(len(data) * keep)])
+        assert probe(path)["fault"] in ("truncated", "unreadable")
+
+
 def _real_photos():
     """Photographs bundled with scikit-image and scikit-learn (all present offline).
 
