@@ -204,7 +204,8 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
             orientation = exif.get(_ORIENTATION, 1)
             if orientation in (5, 6, 7, 8):  # these EXIF orientations swap the axes
                 facts["width"], facts["height"] = height, width
-            facts["frames"] = getattr(im, "n_frames", 1)
+            # Pillow's n_frames reads a whole GIF through its file object to count frames
+            facts["frames"] = (fmt == "gif" and formats.gif_frames(data)) or getattr(im, "n_frames", 1)
             facts["has_gps"] = bool(_POSITION_TAGS & exif.get_ifd(_GPS_IFD).keys())
             try:
                 im = _load_small(im, fmt, data)

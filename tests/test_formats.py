@@ -6,11 +6,12 @@ import io
 import struct
 import zlib
 
+import numpy as np
 import pytest
 from PIL import Image
 
-from labelprep.formats import (CORRUPT, PNG_SIGNATURE, TRUNCATED, damage, format_of_extension, header_size,
-                               jpeg2000_levels,
+from labelprep.formats import (CORRUPT, PNG_SIGNATURE, TRUNCATED, damage, format_of_extension, gif_frames,
+                               header_size, jpeg2000_levels,
                                png_chunk, sniff)
 
 
@@ -77,6 +78,39 @@ class TestFormatOfExtension:
     def test_names(self, name, expected):
         """Known extensions map to their format; unknown ones to the empty string."""
         assert format_of_extension(name) == expected
+
+
+class TestGifFrames:
+    """Frames counted from the GIF89a block structure agree with Pillow's n_frames (the reference)."""
+
+    @pytest.mark.parametrize("frames", [1, 2, 5])
+    @pytest.mark.parametrize("kwargs", [{}, {"comment": b"tide pool"}, {"loop": 0, "duration": 80}])
+    def test_agrees_with_pillow(self, frames, kwargs):
+        rng = np.random.default_rng(frames)
+        images = [Image.fromarray(rng.integers(0, 255, (60, 80, 3), dtype=np.uint8)).quantize(32 + 40 * i)
+                  for i in range(frames)]
+        buf = io.BytesIO()
+        images[0].save(buf, "GIF", save_all=True, append_images=images[1:], **kwargs)
+        data = buf.getvalue()
+        with Image.open(io.BytesIO(data)) as im:
+            assert gif_frames(data) == im.n_frames == frames
+
+    def test_gif87a_without_a_global_table(self):
+        # GIF87a header, a screen descriptor without global table, one image with a 2-entry
+        # local table (flag 0x80, size 0), an LZW stream of one sub-block, the trailer
+        image = b"\x2c" + struct.pack("<HHHHB", 0, 0, 1, 1, 0x80) + bytes(6) + b"\x02\x02\x4c\x01\x00"
+        data = b"GIF87a" + struct.pack("<HHBBB", 1, 1, 0, 0, 0) + image + b"\x3b"
+        assert gif_frames(data) == 1
+        with Image.open(io.BytesIO(data)) as im:
+            assert im.n_frames == 1
+
+    def test_cut_or_broken_blocks_give_none(self):
+        buf = io.BytesIO()
+        Image.new("P", (40, 30)).save(buf, "GIF")
+        data = buf.getvalue()
+        assert gif_frames(data[:-2]) is None       # the trailer and a terminator cut off
+        assert gif_frames(data[:13]) is None
+        assert gif_frames(data[:-1] + b"\x99") is None  # an unknown block where the trailer should be
 
 
 @pytest.mark.skipif(not __import__("PIL.features").features.check("jpg_2000"), reason="no OpenJPEG")
