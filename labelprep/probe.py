@@ -204,8 +204,10 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
             orientation = exif.get(_ORIENTATION, 1)
             if orientation in (5, 6, 7, 8):  # these EXIF orientations swap the axes
                 facts["width"], facts["height"] = height, width
-            # Pillow's n_frames reads a whole GIF through its file object to count frames
-            facts["frames"] = (fmt == "gif" and formats.gif_frames(data)) or getattr(im, "n_frames", 1)
+            # Pillow's n_frames reads a whole GIF through its file object to count frames; its
+            # count stands in only where the block walk gives none
+            counted = formats.gif_frames(data) if fmt == "gif" else None
+            facts["frames"] = counted or getattr(im, "n_frames", 1)
             facts["has_gps"] = bool(_POSITION_TAGS & exif.get_ifd(_GPS_IFD).keys())
             try:
                 im = _load_small(im, fmt, data)
