@@ -16,7 +16,7 @@ from .errors import InputError, ParameterError
 # probe faults that have a code of their own (see RULES); any other fault (a decoder error, a
 # damaged header) is reported as unreadable, so no failed file can come out clean
 _OWN_CODE_FAULTS = ("empty", "not-image", "truncated", "corrupt", "pixel-limit", "symlink", "timeout",
-                    "bad-name")
+                    "bad-name", "no-decoder", "unsafe-member")
 # the modes every loader handles as they are; anything else is unusual-mode
 _PLAIN_MODES = frozenset({"RGB", "L", "P"})
 _MODE_NOTES = {"CMYK": "CMYK colour (4 ink channels)", "I": "32-bit integer samples (I)",
@@ -140,6 +140,8 @@ RULES: dict[str, _Rule] = {
     "link-skipped": _fault_rule("symlink"),
     "timed-out": _fault_rule("timeout"),
     "undecodable-name": _fault_rule("bad-name"),
+    "no-decoder": _fault_rule("no-decoder"),
+    "unsafe-member": _fault_rule("unsafe-member"),
     "too-small": _Rule(_too_small, lambda row, limits:
                        f"{_size(row)}, shorter side under {limits['min_side']} px"),
     "no-label": _Rule(_no_label, lambda row, limits: "no class label: outside every class folder and label table row"),

@@ -33,6 +33,8 @@ _CODE_LIST = [
     IssueCode("link-skipped", ERROR, "check", "a symbolic link; links are not followed, so it is not indexed"),
     IssueCode("timed-out", ERROR, "check", "reading and decoding the file took longer than the per-file time limit; given up"),
     IssueCode("undecodable-name", ERROR, "check", "the file or folder name is not valid UTF-8; listed with \\x escapes, not read (rename it to index it)"),
+    IssueCode("no-decoder", ERROR, "check", "an image format labelprep recognises but this installation cannot decode; the reason names the extra to install"),
+    IssueCode("unsafe-member", ERROR, "check", "an archive member refused unread: an absolute or '..' name, a link, a declared size over the budget or a compression ratio of a bomb"),
     IssueCode("wrong-extension", WARNING, "check", "the file name's extension names another format than its content"),
     IssueCode("extreme-aspect", WARNING, "check", "one side is many times the other (strip, banner, panorama); resizing to a square distorts it"),
     IssueCode("multi-frame", WARNING, "check", "an animation or multi-page file; loaders read only its first frame"),

@@ -38,11 +38,20 @@ EXTENSIONS = {
     "jpeg2000": (".jp2", ".j2k", ".jpx"),
     "ico": (".ico",),
     "avif": (".avif",),
-    "heif": (".heic", ".heif"),
+    "heif": (".heic", ".heif", ".hif"),
+    "jxl": (".jxl",),
 }
 _FORMAT_OF_EXTENSION = {ext: fmt for fmt, exts in EXTENSIONS.items() for ext in exts}
 
-HEAD_BYTES = 32  # enough for every signature above
+HEAD_BYTES = 64  # every signature above, and an ISO BMFF file-type box with several compatible brands
+
+# ISO/IEC 23008-12 (HEIF) annex B and ISO/IEC 23000-22 brands of still images and sequences coded
+# with HEVC, and the generic image brands; AVIF (AV1 Image File Format 1.1, 9.3) has its own two
+_HEIF_BRANDS = frozenset({b"heic", b"heix", b"heim", b"heis", b"hevc", b"hevx", b"hevm", b"hevs"})
+_GENERIC_BRANDS = frozenset({b"mif1", b"msf1", b"mif2", b"miaf"})
+_AVIF_BRANDS = frozenset({b"avif", b"avis"})
+# ISO/IEC 18181-2 (JPEG XL file format) 3: the signature box; 18181-1 9.1: a bare codestream's FF 0A
+_JXL_CONTAINER = b"\x00\x00\x00\x0cJXL \r\n\x87\n"
 
 
 def sniff(head: bytes) -> str:
@@ -69,13 +78,26 @@ def sniff(head: bytes) -> str:
     # Netpbm: "P1".."P6" then whitespace (netpbm format documentation)
     if len(head) >= 3 and head[0:1] == b"P" and head[1:2] in b"123456" and head[2:3] in b" \t\r\n":
         return "pnm"
-    # ISO/IEC 14496-12 file-type box: size, "ftyp", major brand (ISO BMFF containers)
     if head[4:8] == b"ftyp":
-        brand = head[8:12]
-        if brand in (b"avif", b"avis"):
-            return "avif"
-        if brand in (b"heic", b"heix", b"hevc", b"heim", b"heis", b"mif1", b"msf1"):
-            return "heif"
+        return _iso_bmff_image(head)
+    if head.startswith(_JXL_CONTAINER) or head[:2] == b"\xff\x0a":
+        return "jxl"
+    return ""
+
+
+def _iso_bmff_image(head: bytes) -> str:
+    """``"avif"``, ``"heif"`` or ``""`` from an ISO/IEC 14496-12 4.3 file-type box: size, "ftyp",
+    major brand, minor version, then compatible brands to the box's end.
+
+    A generic major brand (``mif1``: any HEIF image) is resolved by the compatible brands, as
+    AV1 and HEVC images both carry it; a box naming no image brand at all (an MP4 video) is no image.
+    """
+    size = struct.unpack(">I", head[:4])[0]
+    brands = {head[8:12]} | {head[i:i + 4] for i in range(16, min(size, len(head)) - 3, 4)}
+    if head[8:12] in _AVIF_BRANDS or (head[8:12] in _GENERIC_BRANDS and brands & _AVIF_BRANDS):
+        return "avif"
+    if brands & (_HEIF_BRANDS | _GENERIC_BRANDS):
+        return "heif"
     return ""
 
 
@@ -262,6 +284,32 @@ def damage(fmt: str, data: bytes) -> tuple[str, str]:
         declared = struct.unpack("<I", data[4:8])[0] + 8
         if len(data) < declared:
             return TRUNCATED, f"RIFF header declares {declared} bytes, file has {len(data)}"
+    if fmt in ("heif", "avif"):
+        return _iso_bmff_damage(data)
+    return "", ""
+
+
+def _iso_bmff_damage(data: bytes) -> tuple[str, str]:
+    """Walk the top-level boxes of an ISO BMFF file (ISO/IEC 14496-12 4.2: a 32-bit size and a
+    type; size 1 means a 64-bit size follows, 0 that the box runs to the end of the file): a box
+    that reaches past the last byte means the file stops early."""
+    pos = 0
+    while pos < len(data):
+        if pos + 8 > len(data):
+            return TRUNCATED, f"a box header at byte {pos} is cut short"
+        size = struct.unpack(">I", data[pos:pos + 4])[0]
+        if size == 1:
+            if pos + 16 > len(data):
+                return TRUNCATED, f"a box header at byte {pos} is cut short"
+            size = struct.unpack(">Q", data[pos + 8:pos + 16])[0]
+        elif size == 0:
+            return "", ""
+        if size < 8:
+            return CORRUPT, f"the box at byte {pos} declares {size} bytes, less than its header"
+        if pos + size > len(data):
+            kind = data[pos + 4:pos + 8].decode("latin-1")
+            return TRUNCATED, f"the {kind!r} box at byte {pos} declares {size} bytes, {len(data) - pos} are there"
+        pos += size
     return "", ""
 
 

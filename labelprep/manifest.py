@@ -65,7 +65,7 @@ _COLUMN_LIST = [
     Column("has_alpha", "boolean", "scan", "the image has an alpha channel or a transparent palette entry"),
     Column("has_gps", "boolean", "scan", "the EXIF data holds GPS location tags"),
     Column("spread", "Float64", "scan", "standard deviation of luminance (0-255) on the hash thumbnail; near 0 for a blank image"),
-    Column("fault", "str", "scan", "why the file could not be fully decoded: empty, not-image, unreadable, truncated, corrupt, pixel-limit, symlink, timeout, bad-name (not UTF-8)"),
+    Column("fault", "str", "scan", "why the file could not be fully decoded: empty, not-image, unreadable, truncated, corrupt, pixel-limit, symlink, timeout, bad-name (not UTF-8), no-decoder, unsafe-member"),
     Column("fault_detail", "str", "scan", "one line from the decoder explaining the fault"),
     Column("phash_c80", "str", "scan", "perceptual hash (as phash) of the centred box keeping 80% of each side; matches copies cropped 5-15% per side"),
     Column("phash_c70", "str", "scan", "perceptual hash (as phash) of the centred box keeping 70% of each side"),

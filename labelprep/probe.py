@@ -8,9 +8,11 @@ hashes need only a small image; the decoder still consumes the whole stream, so 
 from __future__ import annotations
 
 import contextlib
+import functools
 import hashlib
 import io
 import os
+import re
 import signal
 import stat
 import threading
@@ -33,6 +35,16 @@ _POSITION_TAGS = frozenset({0x0002, 0x0004})
 _ORIENTATION = 0x0112    # TIFF 6.0 / EXIF Orientation tag
 _ALPHA_MODES = frozenset({"RGBA", "LA", "PA", "RGBa", "La"})
 _MODE_BITS = {"1": 1, "I;16": 16, "I;16B": 16, "I;16L": 16, "I;16N": 16, "I": 32, "F": 32}
+# formats Pillow decodes only through a plugin or an optional library: what to install, said in the
+# row's reason when it is missing (the plugins register themselves with Pillow on import)
+_NEEDS = {
+    "heif": "HEIF/HEIC needs the pillow-heif plugin: pip install 'labelprep[heif]'",
+    "jxl": "JPEG XL needs the pillow-jxl-plugin: pip install 'labelprep[jxl]'",
+    "avif": "AVIF needs Pillow 11.3 or later built with AVIF support: pip install -U 'pillow>=11.3'",
+}
+# a Python object's default representation, e.g. "<_io.BytesIO object at 0x7f26883bf060>" or
+# "<class 'PIL.JpegImagePlugin.JpegImageFile'>": never part of a reason a user reads
+_OBJECT_REPR = re.compile(r"\s*<[^<>]*(?: object at 0x[0-9a-fA-F]+|class '[^']*')>")
 
 
 def blank_facts() -> dict:
@@ -97,7 +109,8 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
         orientation), ``mode``, ``bits``, ``frames``, ``has_alpha``, ``has_gps``, ``fault``,
         ``fault_detail`` and the columns of :func:`labelprep.hashing.fingerprint`.
         ``fault`` is one of ``""``, ``"empty"``, ``"unreadable"``, ``"not-image"``,
-        ``"truncated"``, ``"corrupt"``, ``"pixel-limit"``, ``"timeout"``.
+        ``"truncated"``, ``"corrupt"``, ``"pixel-limit"``, ``"timeout"``, ``"no-decoder"`` (a
+        format this installation cannot decode; the reason names what to install).
 
     Examples
     --------
@@ -169,6 +182,10 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
         # the library never prints: Pillow's warnings are silenced, both the decompression-bomb
         # one (the pixel budget replaces it) and its notes on damaged files
         warnings.simplefilter("ignore")
+        missing = decoder_missing(fmt)
+        if missing:
+            facts["fault"], facts["fault_detail"] = "no-decoder", missing
+            return
         try:
             im = Image.open(io.BytesIO(data))
         except Image.DecompressionBombError as exc:
@@ -219,6 +236,36 @@ def _decode_into(facts: dict, data: bytes, fmt: str, max_pixels: int) -> None:
             small = _reduce(im)
             small = ImageOps.exif_transpose(small) if orientation != 1 else small
             facts.update(fingerprint(_eight_bit(small)))
+
+
+@functools.cache
+def decoder_missing(fmt: str) -> str:
+    """``""`` when this installation decodes ``fmt``; else what to install, as a row's reason.
+
+    Importing a plugin registers it with Pillow, once per process (cached).
+
+    Examples
+    --------
+    >>> decoder_missing("png")
+    ''
+    """
+    if fmt == "heif":
+        try:
+            import pillow_heif
+        except ImportError:
+            return _NEEDS[fmt]
+        pillow_heif.register_heif_opener()
+    elif fmt == "jxl":
+        try:
+            import pillow_jxl  # noqa: F401 - registers the JPEG XL plugin with Pillow
+        except ImportError:
+            return _NEEDS[fmt]
+    elif fmt == "avif":
+        from PIL import features
+
+        if not features.check("avif"):
+            return _NEEDS[fmt]
+    return ""
 
 
 def _load_small(im, fmt: str, data: bytes):
@@ -278,6 +325,8 @@ def preload() -> None:
     from PIL import Image
 
     Image.init()
+    for fmt in _NEEDS:
+        decoder_missing(fmt)
     buf = io.BytesIO()
     Image.new("RGB", (2 * HASH_SIDE, 2 * HASH_SIDE)).save(buf, "JPEG")
     _decode_into(blank_facts(), buf.getvalue(), "jpeg", DEFAULT_MAX_PIXELS)
@@ -341,5 +390,9 @@ def _over_budget(width: int, height: int, max_pixels: int) -> str:
 
 
 def _one_line(exc: BaseException) -> str:
-    text = " ".join(str(exc).split()) or type(exc).__name__
-    return text[:200]
+    """The exception's message on one line, without Python object representations (Pillow says
+    "cannot identify image file <_io.BytesIO object at 0x...>", which tells a user nothing)."""
+    text = " ".join(_OBJECT_REPR.sub("", str(exc)).split())
+    if text == "cannot identify image file":
+        text = "Pillow cannot identify the image data (damaged, or a variant its decoder does not read)"
+    return text[:200] or f"the decoder failed without a message ({type(exc).__name__})"
