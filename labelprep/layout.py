@@ -14,6 +14,7 @@ Three layouts:
 from __future__ import annotations
 
 import csv
+import io
 import posixpath
 import re
 from pathlib import Path
@@ -99,24 +100,28 @@ def _compile(pattern: str):
 
 
 def read_table(path, *, root=None, known=None) -> dict[str, tuple[str, str]]:
-    """Read a label table into ``{relative path: (label, group)}``.
+    r"""Read a label table into ``{relative path: (label, group)}``.
 
-    Every problem is an :class:`InputError` naming the table's line: a missing column, an unknown
-    column, an absolute path or one that escapes the root, a path listed twice, a listed file that
-    is not under the root (when ``known``, the set of paths found there, is given).
+    The table is CSV as any desktop writes it (UTF-8 with or without a byte-order mark, ``\n`` or
+    ``\r\n`` line ends, ``,``, ``;`` or tab between fields, quoted fields holding the delimiter,
+    ``\`` or ``/`` between folders) or Parquet (by the ``PAR1`` magic, Apache Parquet format
+    specification). Every problem is an :class:`InputError` naming the table's line (a Parquet
+    row counts as line 2 onwards, after the header): a missing column, an unknown column, an
+    absolute path or one that escapes the root, a path listed twice, a listed file that is not
+    under the root (when ``known``, the set of paths found there, is given), and a file that is
+    no table at all (a spreadsheet workbook, UTF-16 text).
+
+    Examples
+    --------
+    >>> read_table("labels.csv", known={"a.jpg"})   # doctest: +SKIP
+    {'a.jpg': ('cat', '')}
     """
     path = Path(path)
     try:
         data = path.read_bytes()
-        text = data.decode("utf-8-sig")
     except OSError as exc:
         raise InputError(f"cannot read label table {path}: {exc.strerror}") from exc
-    except UnicodeDecodeError as exc:
-        lineno = data.count(b"\n", 0, exc.start) + 1
-        raise InputError(f"label table {path} line {lineno}: not UTF-8 text (byte {exc.start} is "
-                         f"0x{data[exc.start]:02x}); save the table as UTF-8") from exc
-    reader = csv.reader(text.splitlines())
-    header = next(reader, None)
+    header, rows = _parquet_rows(path, data) if data[:4] == _PARQUET_MAGIC else _csv_rows(path, data)
     if not header:
         raise InputError(f"label table {path} is empty")
     header = [h.strip() for h in header]
@@ -130,7 +135,7 @@ def read_table(path, *, root=None, known=None) -> dict[str, tuple[str, str]]:
                          f"expected path,label[,group]")
     col = {name: header.index(name) for name in header}
     out: dict[str, tuple[str, str]] = {}
-    for lineno, row in enumerate(reader, start=2):
+    for lineno, row in rows:
         if not any(cell.strip() for cell in row):
             continue
         if len(row) != len(header):
@@ -144,6 +149,68 @@ def read_table(path, *, root=None, known=None) -> dict[str, tuple[str, str]]:
         group = row[col["group"]].strip() if "group" in col else ""
         out[rel] = (row[col["label"]].strip(), group)
     return out
+
+
+_PARQUET_MAGIC = b"PAR1"  # Apache Parquet file format: the 4-byte magic opens and closes the file
+# what a file that is no text table starts with, and what to say (the magic numbers from memory)
+_NOT_TEXT = [(b"PK\x03\x04", "a zip container such as an Excel or LibreOffice workbook; save it as CSV (UTF-8) or Parquet"),
+             (b"\xd0\xcf\x11\xe0", "an old Office workbook; save it as CSV (UTF-8) or Parquet"),
+             (b"\xff\xfe", "UTF-16 text; save the table as UTF-8"),
+             (b"\xfe\xff", "UTF-16 text; save the table as UTF-8")]
+_DELIMITERS = (",", ";", "\t")
+
+
+def _csv_rows(path: Path, data: bytes):
+    """``(header, rows)`` of a CSV table; rows yields ``(line number, fields)``."""
+    for magic, what in _NOT_TEXT:
+        if data.startswith(magic):
+            raise InputError(f"label table {path} line 1: not a CSV table but {what}")
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        lineno = data.count(b"\n", 0, exc.start) + 1
+        raise InputError(f"label table {path} line {lineno}: not UTF-8 text (byte {exc.start} is "
+                         f"0x{data[exc.start]:02x}); save the table as UTF-8") from exc
+    if "\x00" in text:
+        lineno = text.count("\n", 0, text.index("\x00")) + 1
+        raise InputError(f"label table {path} line {lineno}: holds a NUL character; not a text table")
+    # the delimiter is the one that makes the header name both needed columns: a spreadsheet
+    # set to a decimal comma writes ";" between fields
+    first = text.split("\n", 1)[0]
+    delimiter = next((d for d in _DELIMITERS
+                      if {"path", "label"} <= {h.strip() for h in next(csv.reader([first], delimiter=d), [])}), ",")
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter, strict=True)
+    try:
+        header = next(reader, None)
+    except csv.Error as exc:
+        raise InputError(f"label table {path} line {reader.line_num}: {exc}") from exc
+    return header, _numbered(reader, path)
+
+
+def _numbered(reader, path: Path):
+    start = reader.line_num + 1
+    try:
+        for row in reader:
+            yield start, row
+            start = reader.line_num + 1
+    except csv.Error as exc:  # named by the line its record starts on: where a stray quote is
+        raise InputError(f"label table {path} line {start}: {exc}") from exc
+
+
+def _parquet_rows(path: Path, data: bytes):
+    """``(header, rows)`` of a Parquet table, every cell as text (empty for a missing value)."""
+    try:
+        import pyarrow.parquet as pq
+    except ImportError as exc:
+        raise InputError(f"reading the Parquet label table {path} needs pyarrow: "
+                         "pip install 'labelprep[parquet]'") from exc
+    try:
+        table = pq.read_table(io.BytesIO(data))
+    except Exception as exc:  # pyarrow raises its own ArrowInvalid and OSError for a damaged file
+        raise InputError(f"label table {path} line 1: not a readable Parquet file ({exc})") from exc
+    header = table.column_names
+    columns = [["" if v is None else str(v) for v in table.column(name).to_pylist()] for name in header]
+    return header, ((k + 2, list(cells)) for k, cells in enumerate(zip(*columns)))
 
 
 def _safe_relative(raw: str, table, lineno: int) -> str:

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import csv
+import io
+
 import pytest
 
 from labelprep import layout
@@ -73,3 +76,72 @@ class TestTable:
         t = self._table(tmp_path, "path,label\na.jpg,gr\u00fcn\n", encoding="latin-1")
         with pytest.raises(InputError, match="not UTF-8"):
             layout.assign(["a.jpg"], "table", labels_table=t)
+
+
+class TestTablesFromAnyDesktop:
+    """Tables written by Python's csv module in each dialect a desktop produces, and Parquet."""
+
+    ROWS = [("path", "label", "group"), ("a.jpg", "cat", "s1"), ("sub\\b.jpg", "dog, large", ""),
+            ("sub/c.jpg", "eel", 'the "big" one')]
+    PATHS = ["a.jpg", "sub/b.jpg", "sub/c.jpg"]
+
+    def _write(self, tmp_path, *, bom=False, **dialect):
+        buffer = io.StringIO(newline="")
+        csv.writer(buffer, **dialect).writerows(self.ROWS)
+        path = tmp_path / "labels.csv"
+        path.write_bytes((b"\xef\xbb\xbf" if bom else b"") + buffer.getvalue().encode("utf-8"))
+        return path
+
+    @pytest.mark.parametrize("dialect", [
+        {},                                              # csv.excel: "," and \r\n (RFC 4180)
+        {"lineterminator": "\n"},                        # a Unix export
+        {"delimiter": ";"},                              # a spreadsheet set to a decimal comma
+        {"delimiter": "\t"},                             # csv.excel_tab
+        {"delimiter": ";", "quoting": csv.QUOTE_ALL},
+    ])
+    @pytest.mark.parametrize("bom", [False, True])
+    def test_each_dialect_reads_the_same(self, tmp_path, dialect, bom):
+        t = self._write(tmp_path, bom=bom, **dialect)
+        got = layout.assign(self.PATHS, "table", labels_table=t)
+        assert got["label"] == ["cat", "dog, large", "eel"]
+        assert got["group"] == ["s1", "", 'the "big" one']
+
+    def test_a_parquet_table(self, tmp_path):
+        pa = pytest.importorskip("pyarrow")
+        import pyarrow.parquet as pq
+
+        header, *rows = self.ROWS
+        table = pa.table({name: [r[k] for r in rows] for k, name in enumerate(header)})
+        pq.write_table(table, tmp_path / "labels.parquet")
+        got = layout.assign(self.PATHS, "table", labels_table=tmp_path / "labels.parquet")
+        assert got["label"] == ["cat", "dog, large", "eel"]
+        broken = tmp_path / "broken.parquet"
+        broken.write_bytes(b"PAR1" + bytes(20))
+        with pytest.raises(InputError, match="line 1: not a readable Parquet file"):
+            layout.read_table(broken)
+
+    def test_a_parquet_row_is_named_by_its_line(self, tmp_path):
+        pa = pytest.importorskip("pyarrow")
+        import pyarrow.parquet as pq
+
+        pq.write_table(pa.table({"path": ["a.jpg", "../x.jpg"], "label": ["cat", "dog"]}), tmp_path / "t.parquet")
+        with pytest.raises(InputError, match=r"line 3: '../x.jpg' escapes the root"):
+            layout.read_table(tmp_path / "t.parquet")
+
+    def test_a_line_after_a_quoted_line_break_keeps_its_number(self, tmp_path):
+        t = tmp_path / "labels.csv"
+        t.write_bytes(b'path,label\r\na.jpg,"two\r\nlines"\r\n/abs.jpg,cat\r\n')
+        with pytest.raises(InputError, match="line 4: '/abs.jpg' is absolute"):
+            layout.read_table(t)
+
+    @pytest.mark.parametrize("data, message", [
+        (b"PK\x03\x04" + bytes(30), "line 1: not a CSV table but a zip container such as an Excel"),
+        ("path,label\na.jpg,cat\n".encode("utf-16"), "line 1: not a CSV table but UTF-16 text"),
+        (b"path,label\na.jpg,cat\nb.jpg,d\x00g\n", "line 3: holds a NUL character"),
+        (b'path,label\na.jpg,"cat\n', "line 2: unexpected end of data"),
+    ])
+    def test_anything_else_is_named_with_its_line(self, tmp_path, data, message):
+        t = tmp_path / "labels.csv"
+        t.write_bytes(data)
+        with pytest.raises(InputError, match=message):
+            layout.read_table(t)
