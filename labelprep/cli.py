@@ -63,6 +63,8 @@ def _parse_ratios(ctx, param, value):
 
 
 _existing_dir = click.Path(exists=True, file_okay=False, dir_okay=True, path_type=Path)
+# a root is a folder or an archive (.zip, .tar, .tar.gz, .tgz); sources.name_roots judges which
+_existing_root = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
 _existing_file = click.Path(exists=True, file_okay=True, dir_okay=False, path_type=Path)
 # a manifest is a file, or a folder of part files (partitioned Parquet); read() tells them apart
 _existing_manifest = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
@@ -86,11 +88,15 @@ SCAN_OPTIONS = _stack(
                  default="auto", show_default=True,
                  help="Where labels come from: ROOT/<label>/..., ROOT/<train|val|test>/<label>/..., "
                       "or a label table; auto detects."),
-    click.option("--labels", type=_existing_file, default=None,
-                 help="Label table CSV with columns path,label[,group] (paths relative to ROOT)."),
+    click.option("--labels", multiple=True, metavar="[SOURCE=]TABLE",
+                 help="Label table (CSV in any common dialect, or Parquet) with columns "
+                      "path,label[,group], paths relative to ROOT. With several roots, repeat as "
+                      "SOURCE=TABLE, SOURCE a root's folder name as in the source column."),
     click.option("--group-pattern", metavar="REGEX", default=None,
                  help="Regular expression; its first capture group in each path is the file's "
                       "group (e.g. '([^/]+)_\\d+\\.jpg$' groups by name prefix)."),
+    click.option("--group-by-source", is_flag=True,
+                 help="With several roots, each root is one group: no source spans two splits."),
     click.option("--include-hidden", is_flag=True,
                  help="Also index hidden names (starting with '.') and system files such as Thumbs.db."),
     _jobs, _max_pixels,
@@ -167,7 +173,7 @@ def main():
 
 
 @main.command()
-@click.argument("root", type=_existing_dir)
+@click.argument("roots", metavar="ROOT...", nargs=-1, required=True, type=_existing_root)
 @click.option("-o", "--output", "output", required=True, type=click.Path(path_type=Path),
               metavar="MANIFEST", help="Manifest to write (.csv, or .parquet with pyarrow). "
                                        "If it exists, unchanged files are not decoded again.")
@@ -177,37 +183,53 @@ def main():
               help="Write MANIFEST (a .parquet name) as a folder of N Parquet part files.")
 @_force
 @_quiet
-def scan(root, output, layout, labels, group_pattern, include_hidden, jobs, max_pixels, cluster,
-         partitions, force, quiet):
-    """Index every file under ROOT: label, size, format, digests and perceptual hash.
+def scan(roots, output, layout, labels, group_pattern, group_by_source, include_hidden, jobs,
+         max_pixels, cluster, partitions, force, quiet):
+    """Index every file under each ROOT: label, size, format, digests and perceptual hash.
 
-    A rescan decodes only new and changed files (by size and modification time); an interrupted
-    scan resumes from the journal it keeps beside MANIFEST.
+    A ROOT is a folder or a .zip, .tar, .tar.gz or .tgz archive; archives below a ROOT are read
+    member by member in place. With several ROOTs each is a source: paths start with its name
+    and the source column says it. A rescan decodes only new and changed files (by size and
+    modification time); an interrupted scan resumes from the journal it keeps beside MANIFEST.
     """
     from . import manifest
     from .scanner import journal_path, previous_manifest, scan as run
+    from .sources import describe, name_roots
 
     manifest.guard_output(output, force=force)
     if partitions is not None:
         manifest.check_partitions(partitions, output)
     journal = journal_path(output)
-    m = run(root, layout=layout, labels=labels, group_pattern=group_pattern,
-            include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
-            previous=previous_manifest(output, root=root, max_pixels=max_pixels), journal=journal,
-            progress=_progress(quiet), cluster=cluster)
+    root = roots[0] if len(roots) == 1 else list(roots)
+    m = run(root, layout=layout, labels=_labels(labels), group_pattern=group_pattern,
+            group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs,
+            max_pixels=max_pixels, previous=previous_manifest(output, root=root, max_pixels=max_pixels),
+            journal=journal, progress=_progress(quiet), cluster=cluster)
     facts = m.attrs.get("scan", {})
-    options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
+    options = {"layout": layout, "labels": _labels(labels), "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels}
-    manifest.write(m, output, meta={"root": str(root.resolve()),
+    if group_by_source:
+        options["group_by_source"] = True
+    manifest.write(m, output, meta={**describe(name_roots(root)),
                                     "stages": {"scan": {"options": options, "result": facts}}},
                    force=True, partitions=partitions)
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
-                f"{facts.get('reused', 0)} unchanged), layout {facts.get('layout')} -> {output}")
+                f"{facts.get('reused', 0)} unchanged), layout {_layouts(facts.get('layout'))} -> {output}")
     if facts.get("skipped_junk"):
         click.echo(f"skipped {facts['skipped_junk']} hidden or system files "
                    f"(e.g. {', '.join(facts['skipped_examples'][:3])}); --include-hidden indexes them",
                    err=True)
+
+
+def _labels(values: tuple):
+    """``--labels`` as the library takes it: None, one table, or the SOURCE=TABLE items."""
+    return None if not values else values[0] if len(values) == 1 and "=" not in values[0] else list(values)
+
+
+def _layouts(chosen) -> str:
+    """The layout, or with several roots each source's: ``old: folders, new: table``."""
+    return ", ".join(f"{name}: {how}" for name, how in chosen.items()) if isinstance(chosen, dict) else str(chosen)
 
 
 def _print_issues(m, quiet: bool, examples: int = 3):
@@ -317,8 +339,9 @@ def report(manifest_path, json_path, md_path, html_path, root, force, quiet):
 
 
 def _root_from(meta: dict):
-    root = meta.get("root")
-    return Path(root) if root and Path(root).is_dir() else None
+    from .sources import roots_of
+
+    return roots_of(meta)
 
 
 @main.command()
@@ -329,7 +352,7 @@ def _root_from(meta: dict):
 @_max_distance
 @SCAN_OPTIONS
 @_quiet
-def audit(target, fail_on, json_path, max_distance, layout, labels, group_pattern,
+def audit(target, fail_on, json_path, max_distance, layout, labels, group_pattern, group_by_source,
           include_hidden, jobs, max_pixels, quiet):
     """Leaks and class balance of an existing split.
 
@@ -342,8 +365,8 @@ def audit(target, fail_on, json_path, max_distance, layout, labels, group_patter
     if target.is_dir():
         from .scanner import scan as scan_run
 
-        m = scan_run(target, layout=layout, labels=labels, group_pattern=group_pattern,
-                     include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
+        m = scan_run(target, layout=layout, labels=_labels(labels), group_pattern=group_pattern,
+                     group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
                      progress=_progress(quiet))
     else:
         m = _read(target)
@@ -387,7 +410,7 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 
 
 @main.command()
-@click.argument("root", type=_existing_dir)
+@click.argument("roots", metavar="ROOT...", nargs=-1, required=True, type=_existing_root)
 @click.option("--out", "out", required=True, type=click.Path(file_okay=False, path_type=Path),
               metavar="DIR", help="Folder for manifest.csv, report.json and report.html.")
 @SCAN_OPTIONS
@@ -398,11 +421,15 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @_fail_on
 @_force
 @_quiet
-def prepare(root, out, fail_on, quiet, **options):
-    """Scan, check, group, split and report ROOT in one go, into DIR."""
+def prepare(roots, out, fail_on, quiet, labels, **options):
+    """Scan, check, group, split and report each ROOT in one go, into DIR.
+
+    A ROOT is a folder or an archive; with several, each is a source (see scan).
+    """
     from .pipeline import prepare as run
 
-    m, summary = run(root, out, progress=_progress(quiet), **options)
+    root = roots[0] if len(roots) == 1 else list(roots)
+    m, summary = run(root, out, labels=_labels(labels), progress=_progress(quiet), **options)
     _print_outcome(m, summary, out, quiet)
     _gate(m, fail_on)
 

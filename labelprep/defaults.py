@@ -15,3 +15,12 @@ MIN_SPREAD = 2.0
 # (89 MP) PNG decodes in well under 10 s on one core of this project's 2-core machine, so only a
 # file that makes the decoder spin reaches it
 PROBE_SECONDS = 60.0
+# archives read in place (labelprep.sources): a member is read into memory whole, as a file is, so
+# its declared size has a budget; 512 MiB holds a budget-sized image even uncompressed (89 MP x 3
+# bytes = 268 MB)
+MEMBER_BYTES = 512 * 2**20
+# a member expanding over 100x its compressed size is refused as a compression bomb (common
+# practice: Apache POI's ZipSecureFile refuses entries under a 0.01 inflate ratio, from memory);
+# members up to 1 MiB are exempt, as a flat image may compress that well and costs nothing
+MAX_RATIO = 100
+RATIO_GRACE = 2**20

@@ -17,6 +17,7 @@ import tempfile
 import zlib
 from pathlib import Path, PurePosixPath
 
+from . import sources
 from .errors import InputError, OutputExistsError, ParameterError
 
 MODES = ("hardlink", "symlink", "copy")
@@ -40,8 +41,10 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
         exported.
     dest : str or Path
         The export folder; created when missing. It must be empty unless ``force``.
-    root : str or Path
-        The scanned folder that ``path`` is relative to.
+    root : str, Path or dict
+        The scanned folder (or archive) that ``path`` is relative to, or ``{source: folder}`` for
+        a manifest of several sources. Archive members are always copied out (read from the
+        archive in memory, verified like any copy): a link would need a file of their own.
     mode : {"hardlink", "symlink", "copy"}
         How each file is placed. ``hardlink`` falls back to a copy where a link is impossible
         (another filesystem); ``symlink`` links to the absolute source path.
@@ -94,15 +97,13 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
     if strip_metadata and mode != "copy":
         raise ParameterError(f"strip_metadata needs mode='copy' (a {mode} shares the source's bytes, "
                              f"so its metadata cannot change without changing the source); got mode={mode!r}")
-    for name, value in (("dest", dest), ("root", root)):
-        if not isinstance(value, (str, os.PathLike)):
-            raise TypeError(f"{name} must be a path (str or Path), got {type(value).__name__}")
+    if not isinstance(dest, (str, os.PathLike)):
+        raise TypeError(f"dest must be a path (str or Path), got {type(dest).__name__}")
+    sources.check_root(root)
     missing = [c for c in ("path", "label", "split", "sha256") if c not in manifest.columns]
     if missing:
         raise InputError(f"the manifest has no {', '.join(map(repr, missing))} column; run scan and split first")
-    root, dest = Path(root), Path(dest)
-    if not root.is_dir():
-        raise InputError(f"root {root} is not a folder")
+    dest = Path(dest)
 
     plan = plan_targets(manifest)
     if plan.empty:
@@ -216,10 +217,12 @@ def _folder_names(values, what: str):
 def _refuse_overlap(plan, root: Path, dest: Path) -> None:
     """Refuse a ``dest`` that holds any source file: force would delete it, and exports would nest."""
     dest_real = os.path.realpath(dest)
-    root_real = os.path.realpath(root)
     inside = dest_real.rstrip(os.sep) + os.sep
     for rel in plan["path"]:
-        source = os.path.join(root_real, rel)
+        try:
+            source = os.path.realpath(sources.locate(root, rel)[0])
+        except InputError:
+            continue  # a path that leaves its root is refused per file by _place
         if source.startswith(inside):
             raise ParameterError(f"dest {dest} holds source files (e.g. {rel}); export to a folder outside them")
 
@@ -251,20 +254,22 @@ class _Skip(Exception):
     """One file could not be exported; the others go on."""
 
 
-def _place(row, root: Path, dest: Path, mode: str, strip: bool) -> dict:
-    rel = PurePosixPath(row.path)
-    if rel.is_absolute() or ".." in rel.parts:
-        raise _Skip("the path leaves the scanned folder")
-    source = root / rel
+def _place(row, root, dest: Path, mode: str, strip: bool) -> dict:
+    try:
+        source, member = sources.locate(root, row.path)
+    except InputError:
+        raise _Skip("the path leaves the scanned folder") from None
     if not source.is_file():
         raise _Skip("the source file is missing")
     target = dest / row.target
     target.parent.mkdir(parents=True, exist_ok=True)
     method, gps_removed = mode, False
-    if mode == "copy" and strip:
-        data = _read_verified(source, row.sha256)
-        data, gps_removed = strip_location(data)
+    if member is not None or strip:  # strip implies copy; a member has no file to link to
+        data = _read_verified(source, row.sha256, member)
+        if strip:
+            data, gps_removed = strip_location(data)
         digest = _write_verified(data, source, target)
+        method = "copy"
     elif mode == "copy":
         digest = _copy_verified(source, target, row.sha256)
     else:
@@ -306,8 +311,15 @@ def _hash_file(path: Path) -> str:
     return h.hexdigest()
 
 
-def _read_verified(source: Path, expected: str) -> bytes:
-    data = source.read_bytes()
+def _read_verified(source: Path, expected: str, member=None) -> bytes:
+    """The bytes of ``source`` (or of its archive ``member``), checked against the manifest's digest."""
+    if member is None:
+        data = source.read_bytes()
+    else:
+        try:
+            data = sources.read_bytes(source, member)
+        except OSError as exc:
+            raise _Skip(exc.strerror or str(exc)) from exc
     if hashlib.sha256(data).hexdigest() != expected:
         raise _Skip(_CHANGED)
     return data

@@ -41,7 +41,8 @@ def detect(paths: list[str], *, labels_table=None) -> str:
     return "folders"
 
 
-def assign(paths: list[str], layout: str, *, root=None, labels_table=None, group_pattern=None):
+def assign(paths: list[str], layout: str, *, root=None, labels_table=None, group_pattern=None,
+           folders=None):
     """Columns ``label``, ``group`` and ``given_split`` for each relative path.
 
     Parameters
@@ -56,6 +57,10 @@ def assign(paths: list[str], layout: str, *, root=None, labels_table=None, group
     group_pattern : str, optional
         Regular expression searched in each path; its first capture group (or the whole match)
         is the row's group. Table groups win where both are given.
+    folders : list of str, optional
+        Aligned with ``paths``: the paths the folder layouts read, where they differ (an archive
+        member's path without the archive's own name, see :mod:`labelprep.sources`); a label
+        table and the group pattern always see ``paths``.
 
     Returns
     -------
@@ -64,8 +69,9 @@ def assign(paths: list[str], layout: str, *, root=None, labels_table=None, group
     """
     if layout not in LAYOUTS:
         raise ParameterError(f"layout must be one of {', '.join(LAYOUTS)}; got layout={layout!r}")
+    folders = paths if folders is None else folders
     if layout == "auto":
-        layout = detect(paths, labels_table=labels_table)
+        layout = detect(folders, labels_table=labels_table)
     if layout == "table" and labels_table is None:
         raise ParameterError("layout='table' needs a label table (--labels TABLE.csv)")
     n = len(paths)
@@ -75,7 +81,7 @@ def assign(paths: list[str], layout: str, *, root=None, labels_table=None, group
         for i, p in enumerate(paths):
             label[i], group[i] = table.get(p, ("", ""))
     else:
-        for i, p in enumerate(paths):
+        for i, p in enumerate(folders):
             parts = p.split("/")
             if layout == "split-folders" and len(parts) > 1 and parts[0].lower() in SPLIT_FOLDERS:
                 given[i] = SPLIT_FOLDERS[parts[0].lower()]

@@ -58,6 +58,7 @@ _COLUMN_LIST = [
     Column("split", "str", "split", "train, val or test; empty for rows left out"),
     # scan facts
     Column("given_split", "str", "scan", "split named by a train/val/test folder in the source tree; empty otherwise"),
+    Column("source", "str", "scan", "the source a file came from when several roots were scanned in one run: the root's folder or archive name (made unique with -2, -3, ...), which the path starts with; absent with one root"),
     Column("mtime_ns", "Int64", "scan", "modification time in nanoseconds, used to skip unchanged files on a rescan; kept in the scan cache <manifest>.scan-cache, not in the manifest file"),
     Column("mode", "str", "scan", "Pillow mode of the decoded image (RGB, L, CMYK, I;16, P, ...)"),
     Column("bits", "Int64", "scan", "bits per sample as stored (PNG header; otherwise from the mode); over 8 is flagged unusual-mode"),

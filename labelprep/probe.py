@@ -93,8 +93,10 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
 
     Parameters
     ----------
-    path : str or os.PathLike
-        The file (opened read-only; never modified).
+    path : str, os.PathLike or callable
+        The file (opened read-only; never modified), or a callable returning ``(bytes,
+        mtime_ns)`` of data held elsewhere (an archive member); its OSError becomes an
+        ``unreadable`` row like the file's own.
     max_pixels : int
         Pixel budget: an image whose header declares more pixels is not decoded (decompression-bomb
         guard) and gets ``fault="pixel-limit"``.
@@ -126,7 +128,7 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
     facts = blank_facts()
     try:
         with _deadline(time_limit):
-            _probe_into(facts, os.fspath(path), max_pixels)
+            _probe_into(facts, path if callable(path) else os.fspath(path), max_pixels)
     except _OutOfTime:
         facts["fault"], facts["fault_detail"] = "timeout", f"not read and decoded within {time_limit:g} s"
     except ImportError:
@@ -139,20 +141,24 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
     return facts
 
 
-def _probe_into(facts: dict, path: str, max_pixels: int) -> None:
+def _probe_into(facts: dict, path, max_pixels: int) -> None:
     try:
-        st = os.stat(path)
-        if stat.S_ISDIR(st.st_mode):  # a folder the walk could not list (scanner.walk)
-            os.listdir(path)
-        with open(path, "rb") as fh:
-            data = fh.read()
+        if callable(path):  # an archive member (labelprep.sources): the reader gives its bytes
+            data, mtime_ns = path()
+        else:
+            st = os.stat(path)
+            if stat.S_ISDIR(st.st_mode):  # a folder the walk could not list (scanner.walk)
+                os.listdir(path)
+            with open(path, "rb") as fh:
+                data = fh.read()
+            mtime_ns = st.st_mtime_ns
     except OSError as exc:
         # the reason alone: the message's absolute path would make the manifest depend on where
         # the tree is (the row's path already names the file)
         facts["fault"], facts["fault_detail"] = "unreadable", exc.strerror or _one_line(exc)
         return
     facts["bytes"] = len(data)
-    facts["mtime_ns"] = st.st_mtime_ns
+    facts["mtime_ns"] = mtime_ns
     facts["sha256"] = hashlib.sha256(data).hexdigest()
     if not data:
         facts["fault"], facts["fault_detail"] = "empty", "zero bytes"
@@ -268,6 +274,12 @@ def decoder_missing(fmt: str) -> str:
     return ""
 
 
+def register_plugins() -> None:
+    """Register with Pillow every optional decoder plugin that is installed (see :func:`decoder_missing`)."""
+    for fmt in _NEEDS:
+        decoder_missing(fmt)
+
+
 def _load_small(im, fmt: str, data: bytes):
     """``im`` decoded at the smallest scale the hashes need: a JPEG through draft mode, a JPEG 2000
     with fewer resolution levels; other formats in full (then box-reduced by :func:`_reduce`).
@@ -325,8 +337,7 @@ def preload() -> None:
     from PIL import Image
 
     Image.init()
-    for fmt in _NEEDS:
-        decoder_missing(fmt)
+    register_plugins()
     buf = io.BytesIO()
     Image.new("RGB", (2 * HASH_SIDE, 2 * HASH_SIDE)).save(buf, "JPEG")
     _decode_into(blank_facts(), buf.getvalue(), "jpeg", DEFAULT_MAX_PIXELS)

@@ -16,10 +16,12 @@ from __future__ import annotations
 import functools
 import json
 import os
+import posixpath
 import time
 from pathlib import Path
+from typing import NamedTuple
 
-from . import layout as layout_mod
+from . import layout as layout_mod, sources
 from .errors import InputError, ParameterError
 from .parallel import map_ordered, resolve_jobs
 from .probe import DEFAULT_MAX_PIXELS, blank_facts, preload, probe
@@ -57,15 +59,37 @@ def journal_path(manifest_path) -> Path:
     return manifest_path.with_name(manifest_path.name + JOURNAL_SUFFIX)
 
 
-def walk(root, *, include_hidden: bool = False):
-    """Every regular file below ``root``: ``(files, links, misnamed, skipped)``, sorted POSIX paths.
+class Listing(NamedTuple):
+    """What :func:`walk` found below one root, every path POSIX and relative to it, sorted.
 
-    ``links`` are symbolic links (never followed); ``misnamed`` are files and folders whose name is
-    not UTF-8, written with ``\\xNN`` escapes (not read: no manifest format holds such a name
-    exactly, and pandas' string columns refuse it); ``skipped`` are junk names left out.
+    ``files`` are the regular files and archive members to probe; ``links`` symbolic links (never
+    followed); ``misnamed`` names that are not UTF-8, with ``\\xNN`` escapes (not read: no manifest
+    format holds such a name exactly, and pandas' string columns refuse it); ``skipped`` junk names
+    left out; ``refused`` ``{path: reason}`` for archive members refused unread and archives that
+    cannot be read; ``members`` ``{path: sources.Member}`` for the members among ``files``;
+    ``inside`` ``{path: archive path}`` for every entry found inside an archive.
+    """
+
+    files: list
+    links: list
+    misnamed: list
+    skipped: list
+    refused: dict
+    members: dict
+    inside: dict
+
+
+def walk(root, *, include_hidden: bool = False) -> Listing:
+    """Every regular file below ``root`` (a folder or an archive), archives listed member by member.
+
+    See :class:`Listing` for what comes back.
     """
     root = os.fspath(root)
     files, links, misnamed, skipped = [], [], [], []
+    refused, members, inside = {}, {}, {}
+    if os.path.isfile(root) and sources.is_archive(root):
+        _expand(root, "", files, misnamed, skipped, refused, members, inside, include_hidden)
+        return Listing(sorted(files), [], sorted(misnamed), sorted(skipped), refused, members, inside)
     stack = [""]
     while stack:
         rel_dir = stack.pop()
@@ -88,10 +112,30 @@ def walk(root, *, include_hidden: bool = False):
                 links.append(rel)
             elif entry.is_dir(follow_symlinks=False):
                 subdirs.append(rel)
+            elif sources.is_archive(entry.name):
+                _expand(entry.path, rel, files, misnamed, skipped, refused, members, inside, include_hidden)
             else:
                 files.append(rel)
         stack.extend(reversed(subdirs))
-    return sorted(files), sorted(links), sorted(misnamed), sorted(skipped)
+    return Listing(sorted(files), sorted(links), sorted(misnamed), sorted(skipped), refused, members, inside)
+
+
+def _expand(path: str, rel: str, files, misnamed, skipped, refused, members, inside, include_hidden) -> None:
+    """Add the members of the archive at ``path`` (``rel`` below the root, ``""`` when it is the root)."""
+    junk = (lambda name: False) if include_hidden else is_junk
+    found = sources.list_archive(path, is_junk=junk, escape=_escaped)
+    prefix = f"{rel}/" if rel else ""
+    for name, member in found.members.items():
+        files.append(prefix + name)
+        members[prefix + name] = member
+        inside[prefix + name] = rel
+    for name, why in found.refused.items():
+        refused[prefix + name] = why
+        inside[prefix + name] = rel
+    misnamed.extend(prefix + name for name in found.misnamed)
+    skipped.extend(prefix + name for name in found.skipped)
+    if found.error:
+        refused[rel or os.path.basename(path)] = found.error
 
 
 def _is_utf8(name: str) -> bool:
@@ -107,21 +151,27 @@ def _escaped(text: str) -> str:
     return os.fsencode(text).decode("utf-8", errors="backslashreplace")
 
 
-def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
+def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_by_source: bool = False,
          include_hidden: bool = False, jobs=None, max_pixels: int = DEFAULT_MAX_PIXELS,
          previous=None, journal=None, progress=None, cluster=None):
     """Index every file below ``root`` into a new manifest.
 
     Parameters
     ----------
-    root : path-like
-        The folder to scan.
+    root : path-like or list of path-like
+        The folder to scan, an archive, or several of them: each is then a source, its paths
+        prefixed with the source's name, which the ``source`` column holds (see
+        :mod:`labelprep.sources`). Archives below a root are read member by member, in place.
     layout : {"auto", "folders", "split-folders", "table"}
-        Where labels come from (see :mod:`labelprep.layout`); ``auto`` detects it.
-    labels : path-like, optional
-        A label table CSV (``path,label[,group]``), relative paths below ``root``.
+        Where labels come from (see :mod:`labelprep.layout`); ``auto`` detects it for each root.
+    labels : path-like, list or dict, optional
+        A label table (``path,label[,group]``, paths relative to the root) for a single root; with
+        several roots ``NAME=TABLE`` items or ``{NAME: TABLE}``, NAME a source name or the root as
+        given (:func:`labelprep.sources.label_tables`).
     group_pattern : str, optional
         Regular expression whose first capture group in each path is the row's group.
+    group_by_source : bool
+        A row without a group of its own gets its source as group, so no source spans two splits.
     include_hidden : bool
         Index hidden and system files too.
     jobs : int, optional
@@ -132,12 +182,13 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
     max_pixels : int
         Pixel budget per image; larger images are not decoded.
     previous : DataFrame, optional
-        An earlier manifest of the same root made with the same ``max_pixels`` (see
+        An earlier manifest of the same roots made with the same ``max_pixels`` (see
         :func:`previous_manifest`): rows whose path, size and mtime are unchanged are reused
-        instead of probed again. Rows lacking any fact column are probed again.
+        instead of probed again (for an archive member: its size and the archive's mtime). Rows
+        lacking any fact column are probed again.
     journal : path-like, optional
         Scan journal file (see :func:`journal_path`): rows it holds from an interrupted scan of the
-        same root and options are reused like ``previous`` rows, and every file probed now is
+        same roots and options are reused like ``previous`` rows, and every file probed now is
         appended to it. The caller removes it once the manifest is written.
     progress : callable, optional
         See :mod:`labelprep.progress`; called around the comparison with earlier rows (label
@@ -153,38 +204,59 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
     --------
     >>> m = scan("photos/", jobs=1)               # doctest: +SKIP
     >>> m[["path", "label", "format", "width", "height"]].head()  # doctest: +SKIP
+    >>> both = scan(["old/", "new/"], labels={"new": "new/labels.csv"}, jobs=1)  # doctest: +SKIP
     """
     import pandas as pd
 
     from . import manifest
 
-    root_path = Path(root)
-    if not root_path.is_dir():
-        raise InputError(f"{root} is not a folder")
+    named = sources.name_roots(root)
+    tables = sources.label_tables(labels, named)
     if not isinstance(max_pixels, int) or isinstance(max_pixels, bool) or max_pixels <= 0:
         raise ParameterError(f"max_pixels must be a positive int; got max_pixels={max_pixels!r}")
-    files, links, misnamed, skipped = walk(root_path, include_hidden=include_hidden)
-    chosen = layout if layout != "auto" else layout_mod.detect(files, labels_table=labels)
-    assigned = layout_mod.assign(files + links + misnamed, chosen, root=root_path, labels_table=labels,
-                                 group_pattern=group_pattern)
+    files, links, misnamed, refused, skipped, layouts, order = [], [], [], {}, [], {}, []
+    where, columns = {}, {"label": [], "group": [], "given_split": [], "source": []}
+    for name, root_path in named:
+        found = walk(root_path, include_hidden=include_hidden)
+        prefix = f"{name}/" if name else ""
+        entries = found.files + found.links + found.misnamed + list(found.refused)
+        order += [prefix + rel for rel in entries]
+        # labels come from the folders around and inside an archive; its own name is no class
+        folders = [_without_archive(rel, found.inside.get(rel)) for rel in entries]
+        table = tables.get(name)
+        chosen = layout if layout != "auto" else layout_mod.detect(folders[:len(found.files)], labels_table=table)
+        layouts[name] = chosen
+        assigned = layout_mod.assign(entries, chosen, root=root_path, labels_table=table,
+                                     group_pattern=group_pattern, folders=folders)
+        for key in ("label", "group", "given_split"):
+            columns[key] += assigned[key]
+        columns["source"] += [name or root_path.resolve().name] * len(entries)
+        # a worker on another machine has another working folder: send it absolute paths
+        base = os.fspath(root_path.resolve() if cluster is not None else root_path)
+        for rel in found.files:
+            where[prefix + rel] = found.members.get(rel) or os.path.join(base, rel)
+        files += [prefix + rel for rel in found.files]
+        links += [(prefix + rel, root_path / rel) for rel in found.links]
+        misnamed += [prefix + rel for rel in found.misnamed]
+        refused.update({prefix + rel: why for rel, why in found.refused.items()})
+        skipped += [prefix + rel for rel in found.skipped]
 
-    header = {"journal": _JOURNAL_TAG, "root": str(root_path.resolve()), "max_pixels": max_pixels,
+    header = {"journal": _JOURNAL_TAG, **sources.describe(named), "max_pixels": max_pixels,
               "version": _version(), "facts": list(FACTS)}
     logged = _read_journal(journal, header) if journal is not None else []
     known = _known_facts(previous, logged)
-    reused, todo = _split_unchanged(root_path, files, known, resolve(progress))
+    reused, todo = _split_unchanged(where, files, known, resolve(progress))
 
     pieces = [reused]
     if todo and cluster is None and resolve_jobs(jobs) > 1:
         preload()  # before the pool forks, so that workers do not each import Pillow and scipy
-    work = functools.partial(probe, max_pixels=max_pixels)
-    # a worker on another machine has another working folder: send it absolute paths
-    base = root_path.resolve() if cluster is not None else root_path
-    results = map_ordered(work, (os.path.join(base, rel) for rel in todo), jobs=jobs,
-                          chunksize=_chunksize(len(todo), jobs), cluster=cluster)
+    work = functools.partial(sources.probe_unit, max_pixels=max_pixels)
+    tasks = sources.tasks([where[rel] for rel in todo])
+    results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(tasks), jobs), cluster=cluster)
+    facts_each = (facts for task_facts in results for facts in task_facts)
     with _JournalWriter(journal, header, fresh=not logged) as log:
         batch = []
-        for rel, facts in zip(todo, resolve(progress)(results, total=len(todo), label="scan files")):
+        for rel, facts in zip(todo, resolve(progress)(facts_each, total=len(todo), label="scan files")):
             row = {"path": rel, **facts}
             log.append(row)
             batch.append(row)
@@ -193,22 +265,39 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None,
                 batch = []
         pieces.append(_piece(batch))
     pieces.append(_piece([{"path": rel, **blank_facts(), "fault": "symlink",
-                           "fault_detail": f"symbolic link to {_escaped(_readlink(root_path / rel))}; not followed"}
-                          for rel in links]))
+                           "fault_detail": f"symbolic link to {_escaped(_readlink(target))}; not followed"}
+                          for rel, target in links]))
     pieces.append(_piece([{"path": rel, **blank_facts(), "fault": "bad-name",
                            "fault_detail": "name is not valid UTF-8 (shown with \\x escapes); not read"}
                           for rel in misnamed]))
+    pieces.append(_piece([{"path": rel, **blank_facts(), "fault": "unsafe-member", "fault_detail": why}
+                          for rel, why in refused.items()]))
 
     df = pd.concat([p for p in pieces if len(p)] or [_piece([])], ignore_index=True)
-    df = df.set_index("path").reindex(files + links + misnamed).reset_index()
-    for name in ("label", "group", "given_split"):
-        df[name] = assigned[name]
+    df = df.set_index("path").reindex(order).reset_index()
+    for key in ("label", "group", "given_split"):
+        df[key] = columns[key]
+    if group_by_source:
+        df["group"] = df["group"].where(df["group"] != "", pd.Series(columns["source"], index=df.index))
+    if len(named) > 1:
+        df["source"] = columns["source"]
     df["issues"] = ""
     df = manifest.coerce(df).sort_values("path", kind="stable").reset_index(drop=True)
+    chosen = layouts[named[0][0]] if len(named) == 1 else layouts
     df.attrs["scan"] = {"layout": chosen, "probed": len(todo), "reused": len(files) - len(todo),
-                        "links": len(links), "misnamed": len(misnamed), "skipped_junk": len(skipped),
-                        "skipped_examples": skipped[:5]}
+                        "links": len(links), "misnamed": len(misnamed), "refused": len(refused),
+                        "skipped_junk": len(skipped), "skipped_examples": skipped[:5]}
     return df
+
+
+def _without_archive(rel: str, archive) -> str:
+    """``rel`` with the archive's own name left out (``things/more.zip/a.jpg`` -> ``things/a.jpg``),
+    for the layout: the folders around and inside the archive give the label."""
+    if archive is None:
+        return rel
+    inner = rel[len(archive) + 1:] if archive else rel
+    folder = posixpath.dirname(archive)
+    return f"{folder}/{inner}" if folder else inner
 
 
 def _chunksize(n: int, jobs) -> int:
@@ -219,9 +308,10 @@ def _chunksize(n: int, jobs) -> int:
 
 
 def previous_manifest(path, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):
-    """The manifest at ``path`` if a rescan of ``root`` may reuse its rows, else None.
+    """The manifest at ``path`` if a rescan of ``root`` (one root or several) may reuse its rows,
+    else None.
 
-    Rows may be reused only when the manifest's sidecar says it was made from the same folder,
+    Rows may be reused only when the manifest's sidecar says it was made from the same roots,
     with the same pixel budget and the same labelprep version (a newer probe may compute facts
     differently). A missing or unreadable manifest gives None.
     """
@@ -234,8 +324,8 @@ def previous_manifest(path, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):
     meta = manifest.read_sidecar(path)
     stages = meta.get("stages", {})
     budgets = {stages.get(name, {}).get("options", {}).get("max_pixels") for name in ("scan", "prepare")}
-    if (meta.get("root") != str(Path(root).resolve()) or meta.get("version") != _version()
-            or max_pixels not in budgets):
+    same_roots = all(meta.get(key) == value for key, value in sources.describe(sources.name_roots(root)).items())
+    if not same_roots or meta.get("version") != _version() or max_pixels not in budgets:
         return None
     try:
         return manifest.read(path)
@@ -275,25 +365,27 @@ def _known_facts(previous, logged: list):
     return known[usable].set_index("path")
 
 
-def _split_unchanged(root: Path, files: list, known, progress):
-    """``(reused rows, paths to probe)``: a row is reused when the file's size and mtime match."""
+def _split_unchanged(where: dict, files: list, known, progress):
+    """``(reused rows, paths to probe)``: a row is reused when the file's size and mtime match (for
+    an archive member, the size the archive declares and the archive's mtime)."""
     if known is None or not len(known):
         return _piece([]), list(files)
     size = known["bytes"].to_dict()
     mtime = known["mtime_ns"].to_dict()
-    base = os.fspath(root)
     unchanged, todo = [], []
     for rel in progress(files, total=len(files), label="rescan"):
-        if rel in size and _stat_matches(os.path.join(base, rel), size[rel], mtime[rel]):
+        if rel in size and _stat_matches(where[rel], size[rel], mtime[rel]):
             unchanged.append(rel)
         else:
             todo.append(rel)
     return known.loc[unchanged].reset_index(), todo
 
 
-def _stat_matches(path: str, size, mtime_ns) -> bool:
+def _stat_matches(location, size, mtime_ns) -> bool:
+    if isinstance(location, sources.Member):
+        return location.size == size and location.mtime_ns == mtime_ns
     try:
-        st = os.stat(path, follow_symlinks=False)
+        st = os.stat(location, follow_symlinks=False)
     except OSError:
         return False
     return st.st_size == size and st.st_mtime_ns == mtime_ns

@@ -143,7 +143,7 @@ class TestSummary:
     @pytest.mark.parametrize("kwargs, error, match", [
         ({"json": 5}, TypeError, "json must be a path"),
         ({"meta": ["seed"]}, TypeError, "meta must be a dict"),
-        ({"root": "/no/such/folder"}, ParameterError, "root='/no/such/folder' is not a folder"),
+        ({"root": "/no/such/folder"}, ParameterError, "root='/no/such/folder' is neither a folder nor an archive"),
     ])
     def test_bad_parameters(self, dataset, kwargs, error, match):
         """Wrong types and missing folders are refused with the value named."""

@@ -28,9 +28,10 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
         yet (``issues``, ``dup_group``, ``split``, ...) count as empty.
     json, html, markdown : str or Path, optional
         Files to write (atomically); each is left alone when not given.
-    root : str or Path, optional
-        The scanned folder, which ``path`` is relative to. Only the HTML page uses it, to embed
-        thumbnails of near-duplicates; without it the page shows paths only.
+    root : str, Path or dict, optional
+        The scanned folder (or archive), which ``path`` is relative to, or ``{source: folder}``
+        for a manifest of several sources (:func:`labelprep.sources.roots_of`). Only the HTML
+        page uses it, to embed thumbnails of near-duplicates; without it the page shows paths only.
     meta : dict, optional
         The manifest's sidecar (:func:`labelprep.manifest.read_sidecar`): the seed, root and stage
         options it records are shown.
@@ -56,13 +57,15 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     >>> s["issues"][0]["code"], s["issues"][0]["rows"]
     ('too-small', 1)
     """
-    for name, value in (("json", json), ("html", html), ("markdown", markdown), ("root", root)):
+    for name, value in (("json", json), ("html", html), ("markdown", markdown)):
         if value is not None and not isinstance(value, (str, os.PathLike)):
             raise TypeError(f"{name} must be a path (str or Path), got {type(value).__name__}")
     if meta is not None and not isinstance(meta, dict):
         raise TypeError(f"meta must be a dict (the manifest's sidecar), got {type(meta).__name__}")
-    if root is not None and not os.path.isdir(root):
-        raise ParameterError(f"root={str(root)!r} is not a folder")
+    if root is not None:
+        from ..sources import check_root
+
+        check_root(root)
     if "path" not in manifest.columns:
         raise InputError("the manifest has no 'path' column")
 
