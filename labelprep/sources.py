@@ -131,11 +131,7 @@ def _list_zip(path: str, mtime_ns: int, out: ArchiveListing, is_junk, escape) ->
 def _list_tar(path: str, mtime_ns: int, out: ArchiveListing, is_junk, escape) -> None:
     kind = _kind(path)
     with _tar_entries(path) as entries:
-        for info in entries:
-            if info is None:  # the stream bound was reached: stop before decompressing further
-                out.error = (f"expands past {defaults.MAX_RATIO}x its size (a compression bomb?); "
-                             f"listing stopped after {len(out.members) + len(out.refused)} members")
-                return
+        for info, within in entries:
             if info.isdir():
                 continue
             name = info.name
@@ -146,15 +142,23 @@ def _list_tar(path: str, mtime_ns: int, out: ArchiveListing, is_junk, escape) ->
                 why = "a device, pipe or other special entry; not a file"
             elif not why and info.size > defaults.MEMBER_BYTES:
                 why = _over_limits(info.size, info.size)
+            elif not why and not within:
+                why = (f"the archive expands past {defaults.MAX_RATIO}x its size here (a compression "
+                       f"bomb?); not read")
             _add(out, name, why, lambda n=name, i=info: Member(path, kind, n, i.size, mtime_ns, i.offset_data),
                  is_junk, escape)
+            if not within:
+                out.error = (f"expands past {defaults.MAX_RATIO}x its size (a compression bomb?); listing "
+                             f"stopped at member {escape(name)!r}, the members after it were not read")
+                return
 
 
 @contextlib.contextmanager
 def _tar_entries(path: str):
-    """The tar headers of ``path`` in order; for a gzip-compressed tar, a final None where going on
-    would decompress more than ``MAX_RATIO`` times the archive's size (the next header lies past
-    the data of a member, and skipping data means decompressing it)."""
+    """``(header, within)`` for each tar header of ``path`` in order. For a gzip-compressed tar,
+    ``within`` turns False at the first member whose data ends past ``MAX_RATIO`` times the
+    archive's size, and nothing follows it: the next header lies past that data, and skipping
+    data means decompressing it."""
     limit = defaults.MAX_RATIO * os.path.getsize(path) + defaults.RATIO_GRACE
     with open(path, "rb") as raw:
         compressed = _kind(path) == "tgz"
@@ -162,9 +166,9 @@ def _tar_entries(path: str):
         with tarfile.open(fileobj=stream, mode="r:") as tf:
             def entries():
                 while (info := tf.next()) is not None:
-                    yield info
-                    if compressed and info.offset_data + info.size > limit:
-                        yield None
+                    within = not compressed or info.offset_data + info.size <= limit
+                    yield info, within
+                    if not within:
                         return
             yield entries()
 
@@ -430,8 +434,8 @@ def read_bytes(root, rel: str) -> bytes:
                     raise OSError(0, _over_limits(info.file_size, info.compress_size))
                 return _read_member(zf, Member(str(where), kind, name, info.file_size, 0))
         with _tar_entries(str(where)) as entries:
-            for info in entries:
-                if info is not None and info.isreg() and info.name.replace("\\", "/").strip("/") == name:
+            for info, within in entries:
+                if within and info.isreg() and info.name.replace("\\", "/").strip("/") == name:
                     if info.size > defaults.MEMBER_BYTES:
                         raise OSError(0, _over_limits(info.size, info.size))
                     with _tar_stream(Member(str(where), kind, name, info.size, 0)) as fh:

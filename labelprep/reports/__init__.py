@@ -120,6 +120,8 @@ def _complete(manifest):
     m = manifest.copy()
     for name in ("label", "split", "issues", "phash", "fault"):
         m[name] = m[name].fillna("").astype(str) if name in m.columns else ""
+    if "source" in m.columns:
+        m["source"] = m["source"].fillna("").astype(str)
     m["dup_group"] = (pd.to_numeric(m["dup_group"]).astype("Int64") if "dup_group" in m.columns
                       else pd.array([pd.NA] * len(m), dtype="Int64"))
     if "keeper" not in m.columns:
@@ -135,7 +137,7 @@ def _summary(m, meta: dict) -> dict:
     in_split = int((m["split"] != "").sum())
     splits = {name: {"count": stats["rows"], "share": stats["rows"] / in_split if in_split else 0.0}
               for name, stats in balance["splits"].items() if name != "unassigned"}
-    return {
+    summary = {
         "format": FORMAT_TAG,
         "version": __version__,
         "files": len(m),
@@ -150,6 +152,26 @@ def _summary(m, meta: dict) -> dict:
         "root": meta.get("root"),
         "options": _jsonable(meta.get("stages", {})),
     }
+    if "source" in m.columns:  # a manifest of several sources (one root has no such column)
+        summary["sources"] = _by_source(m, balance["classes"])
+    return summary
+
+
+def _by_source(m, classes: list) -> list:
+    """Per source, in name order: files, in_split, left_out, per split and per class counts (every
+    row with a label), and ``issues`` ``{code: rows}`` in registry order."""
+    out = []
+    for name, rows in m.groupby("source", sort=True):
+        in_split = rows[rows["split"] != ""]
+        counts = rows["label"].value_counts()
+        out.append({
+            "source": name, "files": len(rows), "in_split": len(in_split),
+            "left_out": len(rows) - len(in_split),
+            "splits": {split: int(n) for split, n in in_split["split"].value_counts().sort_index().items()},
+            "classes": {c: int(counts.get(c, 0)) for c in classes},
+            "issues": codes.counts(rows["issues"]),
+        })
+    return out
 
 
 def _issues(m) -> list:

@@ -13,7 +13,7 @@ from pathlib import Path
 
 from .. import codes
 from . import cluster_table
-from .text import UNASSIGNED, _balance_rows, _class_rows, _warning_lines, flatten, plural
+from .text import UNASSIGNED, _balance_rows, _class_rows, _warning_lines, flatten, plural, source_rows
 
 TEMPLATES = Path(__file__).parent / "templates"
 THUMB_SIDE = 120          # CSS pixels of a tile; images are made at twice that for sharp phone screens
@@ -35,12 +35,14 @@ def render(m, summary: dict, *, root=None) -> str:
     clusters, clusters_total = _clusters(m, root)
     class_header, class_rows = _class_rows(summary)
     balance_header, balance_rows = _balance_rows(summary)
+    source_header, source_table = source_rows(summary) if "sources" in summary else ([], [])
     return env.get_template("report.html.j2").render(
         s=summary,
         colours=_colours(summary),
         chart=_chart(summary),
         class_header=class_header, class_rows=class_rows,
         balance_header=balance_header, balance_rows=balance_rows,
+        source_header=source_header, source_rows=source_table,
         warnings=_warning_lines(summary),
         issues=_issue_files(m, summary),
         files_per_issue=FILES_PER_ISSUE,

@@ -8,6 +8,8 @@ UNASSIGNED = "unassigned"
 def terminal(summary: dict, *, issues: bool = True) -> str:
     """Aligned plain-text tables for a terminal (see :func:`labelprep.reports.terminal_table`)."""
     parts = [_headline(summary), "", _table(*_class_rows(summary), markdown=False)]
+    if "sources" in summary:
+        parts += ["", _table(*source_rows(summary), markdown=False)]
     parts += ["", _table(*_balance_rows(summary), markdown=False)]
     if issues and summary["issues"]:
         parts += ["", _table(*_issue_rows(summary), markdown=False)]
@@ -19,7 +21,9 @@ def terminal(summary: dict, *, issues: bool = True) -> str:
 def markdown(summary: dict) -> str:
     """A Markdown document of the summary: headline, tables, warnings, options."""
     parts = ["# labelprep report", "", _headline(summary), "", "## Classes per split", "",
-             _table(*_class_rows(summary), markdown=True), "", "## Balance", "",
+             _table(*_class_rows(summary), markdown=True), "",
+             *(["## Sources", "", _table(*source_rows(summary), markdown=True), ""] if "sources" in summary else []),
+             "## Balance", "",
              _table(*_balance_rows(summary), markdown=True)]
     warnings = _warning_lines(summary)
     if warnings:
@@ -51,6 +55,18 @@ def _class_rows(summary: dict):
     rows = [[c, *(splits[n]["counts"][c] for n in names), overall[c], left.get(c, 0)]
             for c in summary["classes"]]
     rows.append(["all", *(splits[n]["rows"] for n in names), summary["in_split"], summary["left_out"]])
+    return header, rows
+
+
+def source_rows(summary: dict):
+    """``(header, rows)``: per source its files, how many are in each split, its files per class
+    and its issues (``code n``), for a summary of several sources."""
+    names = _split_names(summary)
+    header = ["source", "files", *names, "left out", *summary["classes"], "issues"]
+    rows = [[s["source"], s["files"], *(s["splits"].get(n, 0) for n in names), s["left_out"],
+             *(s["classes"][c] for c in summary["classes"]),
+             ", ".join(f"{code} {n}" for code, n in s["issues"].items()) or "-"]
+            for s in summary["sources"]]
     return header, rows
 
 
