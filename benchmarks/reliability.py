@@ -22,7 +22,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 SUITES = ["tests/test_reliability.py", "tests/test_fuzz.py", "tests/test_faults.py"]
 LABELS = {"files": "source files tried", "fuzz": "fuzz cases", "faults": "faults injected",
-          "lost": "data lost"}
+          "refused": "hostile archive members refused", "lost": "data lost"}
 
 
 def main() -> int:

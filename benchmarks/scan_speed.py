@@ -1,7 +1,8 @@
 """Scan speed: labelprep scan against plain decoding loops, per file, side by side in one run.
 
 Generates N photo-like multi-megapixel JPEGs (photographs bundled with scikit-image and
-scikit-learn, cropped, scaled up and given sensor-like noise) and a mixed-format set, then runs
+scikit-learn, cropped, scaled up and given sensor-like noise), a mixed-format set and a set of
+HEIC files (the format phones save; encoded by pillow-heif), then runs
 
   (a) a plain loop: Image.open + full decode + imagehash.phash per file
   (b) a bare loop: Image.open + the probe's draft call + load per file (close to the decode limit)
@@ -80,13 +81,19 @@ def _photo_like(i: int, size):
 
 
 def _write_one(job):
+    from labelprep.probe import register_plugins
+
+    register_plugins()  # HEIF is written and read through pillow-heif
     i, root, size, fmt, ext = job
     path = Path(root) / f"class{i % 10}" / f"img{i:05d}.{ext}"
     path.parent.mkdir(parents=True, exist_ok=True)
     im = _photo_like(i, size)
     if fmt == "GIF":
         im = im.quantize(256)
-    im.save(path, fmt, **({"quality": 85 + i % 11} if fmt in ("JPEG", "WEBP") else {}))
+    options = {"quality": 85 + i % 11} if fmt in ("JPEG", "WEBP", "HEIF") else {}
+    if fmt == "HEIF":  # x265's fastest preset: its default takes 20 s per 3 MP photo here
+        options["enc_params"] = {"preset": "ultrafast"}
+    im.save(path, fmt, **options)
     return path.stat().st_size
 
 
@@ -109,6 +116,9 @@ def _child(method: str, root: str, out: str, jobs: str) -> None:
     if method in ("full", "draft"):
         from PIL import Image
 
+        from labelprep.probe import register_plugins
+
+        register_plugins()  # as the scan does: HEIF and JPEG XL through their plugins
         files = sorted(p for p in Path(root).rglob("*") if p.is_file())
     if method == "full":
         import imagehash
@@ -259,6 +269,8 @@ def main(argv=None):
     parser.add_argument("--size", default="3000x2000", help="their size (default 3000x2000)")
     parser.add_argument("--mixed", type=int, default=60, help="files in the mixed-format set (0: none)")
     parser.add_argument("--mixed-size", default="1500x1000", help="their size (default 1500x1000)")
+    parser.add_argument("--heic", type=int, default=24, help="HEIC files (0: none; needs pillow-heif)")
+    parser.add_argument("--heic-size", default="2016x1512", help="their size (default 2016x1512)")
     parser.add_argument("--small", default="1000,10000", help="small-file counts for the memory check")
     parser.add_argument("--jobs", type=int, default=0, help="jobs for (d) and (e); 0 = every core")
     parser.add_argument("--repeat", type=int, default=1, help="best of this many runs per figure")
@@ -288,6 +300,14 @@ def main(argv=None):
             _table(f"{args.mixed} mixed-format files {mixed_size[0]}x{mixed_size[1]} "
                    f"({', '.join(f for f, _ in MIXED_FORMATS)}), mean {total / args.mixed / 1e6:.2f} MB",
                    mixed, work, args.jobs, args.repeat, cores)
+        if args.heic:
+            heic = work / "heic"
+            heic_size = tuple(int(v) for v in args.heic_size.split("x"))
+            total = _make_tree(heic, args.heic, heic_size, (("HEIF", "heic"),), cores)
+            _table(f"{args.heic} photo-like HEIC files {heic_size[0]}x{heic_size[1]} (pillow-heif, "
+                   f"x265 quality 85-95), mean {total / args.heic / 1e6:.2f} MB; decoded in full, as "
+                   f"pillow-heif's draft() would swap in an embedded thumbnail, not a reduced decode",
+                   heic, work, args.jobs, args.repeat, cores)
         rescan = (args.n, per_file["e"])
         if args.small:
             rescan = _memory_flat([int(v) for v in args.small.split(",")], work, args.jobs, args.repeat)

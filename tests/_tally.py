@@ -9,7 +9,7 @@ from __future__ import annotations
 import json
 import os
 
-KINDS = ("files", "fuzz", "faults", "lost")
+KINDS = ("files", "fuzz", "faults", "refused", "lost")
 
 
 def tally(**counts: int) -> None:

@@ -397,3 +397,87 @@ class TestOutputsNotOverwritten:
         assert [p.name for p in dest.iterdir()] == ["mine.txt"]
         assert _run(runner, "export", tmp_path / "out" / "manifest.csv", dest, "--force", "-q").exit_code == 0
         assert (dest / "mine.txt").read_text() == "keep"  # force replaces only what an export writes
+
+
+def _phone_photo(fmt: str, seed: int) -> bytes:
+    """A photo as a phone saves it (HEIC through pillow-heif, AVIF through Pillow), turned a
+    quarter by its EXIF orientation."""
+    pytest.importorskip("pillow_heif").register_heif_opener()
+    exif = __import__("PIL.Image", fromlist=["Exif"]).Exif()
+    exif[0x0112] = 6  # TIFF 6.0 / EXIF Orientation: rotate 90 degrees clockwise to view
+    return encode(textured((80, 64), seed), fmt, exif=exif.tobytes())
+
+
+@pytest.fixture
+def inputs_tree(tmp_path):
+    """Two sources as people have them: phone photos, archives holding every hostile member kind
+    next to fine ones and hostile names, and a label table from a spreadsheet set to ';'."""
+    import tarfile
+    import zipfile
+
+    phone, share = tmp_path / "phone", tmp_path / "share"
+    (phone / "cat").mkdir(parents=True)
+    (phone / "cat" / "IMG_0001.HEIC").write_bytes(_phone_photo("HEIF", 1))
+    (phone / "cat" / "IMG_0002.avif").write_bytes(_phone_photo("AVIF", 2))
+    (phone / "cat" / "copy.png").write_bytes(_png(3))
+    with zipfile.ZipFile(phone / "downloads.zip", "w", zipfile.ZIP_DEFLATED) as zf:
+        for k, name in enumerate(["dog/a.png", "dog/q\"uote's.png", "dog/new\nline.png", "dog/c,omma.png"]):
+            zf.writestr(name, _png(10 + k))
+        zf.writestr("../escape.png", _png(20))
+        zf.writestr("/etc/absolute.png", _png(21))
+        zf.writestr("dog/bomb.bmp", bytes(4 * 2**20))
+        link = zipfile.ZipInfo("dog/link.png")
+        link.external_attr = (stat.S_IFLNK | 0o777) << 16
+        zf.writestr(link, "/etc/passwd")
+    (share / "owl").mkdir(parents=True)
+    with tarfile.open(share / "owl" / "pack.tgz", "w:gz") as tf:
+        for name, data in [("o1.png", _png(30)), ("o2.png", _png(31)), ("same.png", _png(3))]:
+            info = tarfile.TarInfo(name)
+            info.size = len(data)
+            tf.addfile(info, io.BytesIO(data))
+        for kind, name in [(tarfile.SYMTYPE, "sym.png"), (tarfile.LNKTYPE, "hard.png"), (tarfile.CHRTYPE, "dev")]:
+            special = tarfile.TarInfo(name)
+            special.type, special.linkname = kind, "/etc/passwd" if kind != tarfile.CHRTYPE else ""
+            tf.addfile(special)
+    table = tmp_path / "share-labels.csv"
+    buffer = io.StringIO(newline="")
+    writer = csv.writer(buffer, delimiter=";")  # csv.excel: \r\n line ends
+    writer.writerows([("path", "label"), ("owl\\pack.tgz\\o1.png", "owl, barn"), ("owl/pack.tgz/o2.png", "owl"),
+                      ("owl/pack.tgz/same.png", "cat")])
+    table.write_bytes(b"\xef\xbb\xbf" + buffer.getvalue().encode("utf-8"))
+    return phone, share, table
+
+
+class TestInputsAsPeopleHaveThem:
+    REFUSED = 7  # ../, absolute, bomb, zip link; tar symlink, hardlink, device
+
+    def test_two_sources_with_archives_change_nothing_and_every_refusal_says_why(self, runner, tmp_path,
+                                                                                   inputs_tree):
+        phone, share, table = inputs_tree
+        before = {root: snapshot(root) for root in (phone, share)}
+        out = tmp_path / "out"
+        result = _run(runner, "prepare", phone, share, "--out", out, "--labels", f"share={table}", "-j", "2", "-q")
+        assert result.exit_code == 0, result.output
+        for mode in ("copy", "hardlink", "symlink"):
+            assert _run(runner, "export", out / "manifest.csv", tmp_path / mode, "--mode", mode, "-q").exit_code == 0
+        after = {root: snapshot(root) for root in before}
+        changed = sum(before[r].get(k) != after[r].get(k) for r in before for k in before[r].keys() | after[r].keys())
+        m = manifest.read(out / "manifest.csv")
+        refused = m[m["fault"] == "unsafe-member"]
+        tally(files=len(m), refused=len(refused), lost=changed)
+        assert changed == 0
+        assert len(refused) == self.REFUSED and (refused["fault_detail"] != "").all()
+        assert not any(".." in p.split("/") or p.startswith("/") for p in m["path"])
+        rows = {r["path"]: r for _, r in m.iterrows()}
+        heic = rows["phone/cat/IMG_0001.HEIC"]
+        assert (heic["format"], heic["width"], heic["height"], heic["fault"]) == ("heif", 64, 80, "")
+        assert rows["phone/cat/IMG_0002.avif"]["width"] == 64
+        assert rows["share/owl/pack.tgz/o1.png"]["label"] == "owl, barn"
+        assert rows["phone/downloads.zip/dog/new\nline.png"]["label"] == "dog"
+        # the PNG in the phone folder and its copy in the colleague's tar: one cluster, one split
+        pair = m[m["path"].isin(["phone/cat/copy.png", "share/owl/pack.tgz/same.png"])]
+        assert pair["dup_group"].nunique() == 1 and pair["split"].nunique() == 1
+        placed = m[m["split"] != ""]
+        copies = [p for p in (tmp_path / "copy").rglob("*") if p.is_file() and p.parent != tmp_path / "copy"]
+        assert len(copies) == len(placed) > 0
+        assert manifest.read(out / "manifest.csv").equals(m)  # the CSV round trip is exact
