@@ -269,8 +269,8 @@ def probe_unit(task: list, *, max_pixels: int) -> list:
 
 
 def _tar_stream(member: Member):
-    raw = open(member.archive, "rb")
-    return gzip.GzipFile(fileobj=raw, mode="rb") if member.kind == "tgz" else raw
+    """The tar's bytes as one seekable stream (decompressed for a .tar.gz), closing the file with it."""
+    return gzip.open(member.archive, "rb") if member.kind == "tgz" else open(member.archive, "rb")
 
 
 def _failing(why: str):
@@ -296,8 +296,8 @@ def _read_member(handle, member: Member) -> bytes:
 def name_roots(roots) -> list:
     """``[(source name, Path)]`` for the roots of one run; the name is ``""`` for a single root.
 
-    Raises ParameterError for no root, a root given twice, or one that is neither a folder nor an
-    archive.
+    Raises ParameterError for no root or a root given twice, InputError for one that is neither a
+    folder nor an archive.
 
     Examples
     --------
