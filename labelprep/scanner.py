@@ -250,7 +250,7 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     pieces = [reused]
     if todo and cluster is None and resolve_jobs(jobs) > 1:
         preload()  # before the pool forks, so that workers do not each import Pillow and scipy
-    work = functools.partial(sources.probe_unit, max_pixels=max_pixels)
+    work = functools.partial(sources.probe_unit, max_pixels=max_pixels, probe=probe)
     tasks = sources.tasks([where[rel] for rel in todo])
     results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(tasks), jobs), cluster=cluster)
     facts_each = (facts for task_facts in results for facts in task_facts)

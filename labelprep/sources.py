@@ -246,10 +246,9 @@ def tasks(entries: list) -> list:
     return out
 
 
-def probe_unit(task: list, *, max_pixels: int) -> list:
-    """The probe's facts for every entry of one task (see :func:`tasks`), in the task's order."""
-    from .probe import probe
-
+def probe_unit(task: list, *, max_pixels: int, probe) -> list:
+    """The facts ``probe`` (:func:`labelprep.probe.probe`, passed in by the scanner) gives for every
+    entry of one task (see :func:`tasks`), in the task's order."""
     if not isinstance(task[0], Member):
         return [probe(task[0], max_pixels=max_pixels)]
     first = task[0]
