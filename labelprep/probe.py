@@ -275,7 +275,12 @@ def decoder_missing(fmt: str) -> str:
 
 
 def register_plugins() -> None:
-    """Register with Pillow every optional decoder plugin that is installed (see :func:`decoder_missing`)."""
+    """Register with Pillow every optional decoder plugin that is installed (see :func:`decoder_missing`).
+
+    Examples
+    --------
+    >>> register_plugins()   # afterwards Image.open reads HEIC where pillow-heif is installed
+    """
     for fmt in _NEEDS:
         decoder_missing(fmt)
 

@@ -91,6 +91,12 @@ def list_archive(path, *, is_junk, escape) -> ArchiveListing:
     ``is_junk(name)`` says which names to skip (hidden and system files), ``escape(name)`` writes
     a name that is not UTF-8 with ``\\x`` escapes. Never raises for the archive's content: a file
     that is no readable archive comes back with ``error`` set.
+
+    Examples
+    --------
+    >>> found = list_archive("more.zip", is_junk=lambda n: n.startswith("."), escape=str)  # doctest: +SKIP
+    >>> sorted(found.members), found.refused                                                # doctest: +SKIP
+    (['rocket.jpg'], {'%2e%2e/evil.jpg': "a member name climbing out with '..' ('../evil.jpg'); not read"})
     """
     path = os.fspath(path)
     out = ArchiveListing()
@@ -230,6 +236,11 @@ def tasks(entries: list) -> list:
 
     Members of one archive share a task, so the archive is opened once per task; ``entries`` come
     in path order, in which every archive's members are consecutive.
+
+    Examples
+    --------
+    >>> tasks(["a.jpg", "b.jpg"])
+    [['a.jpg'], ['b.jpg']]
     """
     out, run = [], []
     for entry in entries:
@@ -248,7 +259,14 @@ def tasks(entries: list) -> list:
 
 def probe_unit(task: list, *, max_pixels: int, probe) -> list:
     """The facts ``probe`` (:func:`labelprep.probe.probe`, passed in by the scanner) gives for every
-    entry of one task (see :func:`tasks`), in the task's order."""
+    entry of one task (see :func:`tasks`), in the task's order.
+
+    Examples
+    --------
+    >>> from labelprep.probe import probe
+    >>> [facts["format"] for facts in probe_unit(["photo.jpg"], max_pixels=10**8, probe=probe)]  # doctest: +SKIP
+    ['jpeg']
+    """
     if not isinstance(task[0], Member):
         return [probe(task[0], max_pixels=max_pixels)]
     first = task[0]
@@ -363,14 +381,26 @@ def label_tables(labels, named: list) -> dict:
 
 
 def describe(named: list) -> dict:
-    """What the sidecar records of the roots: ``{"root": abs}`` for one, ``{"sources": {name: abs}}``."""
+    """What the sidecar records of the roots: ``{"root": abs}`` for one, ``{"sources": {name: abs}}``.
+
+    Examples
+    --------
+    >>> describe([("", Path("/data/photos"))])
+    {'root': '/data/photos'}
+    """
     if len(named) == 1:
         return {"root": str(named[0][1].resolve())}
     return {"sources": {name: str(root.resolve()) for name, root in named}}
 
 
 def roots_of(meta: dict):
-    """The root a sidecar names (a Path), its sources (``{name: Path}``), or None when they are gone."""
+    """The root a sidecar names (a Path), its sources (``{name: Path}``), or None when they are gone.
+
+    Examples
+    --------
+    >>> roots_of({"root": "/no/such/folder"}) is None
+    True
+    """
     if meta.get("sources"):
         found = {name: Path(p) for name, p in meta["sources"].items()}
         return found if all(p.exists() for p in found.values()) else None
@@ -382,6 +412,13 @@ def check_root(root) -> None:
     """Raise unless ``root`` is a folder, an archive, or a dict of them (what :func:`locate` takes).
 
     Raises TypeError for another type and ParameterError for a path that is neither.
+
+    Examples
+    --------
+    >>> check_root("/no/such/folder")
+    Traceback (most recent call last):
+    ...
+    labelprep.errors.ParameterError: root='/no/such/folder' is neither a folder nor an archive
     """
     if isinstance(root, dict):
         for value in root.values():
@@ -398,6 +435,13 @@ def locate(root, rel: str):
 
     ``root`` is what the paths are relative to: a folder, an archive, or ``{source: folder}``.
     Raises InputError for a path that leaves its root or names an unknown source.
+
+    Examples
+    --------
+    >>> locate("photos", "things/more.zip/rocket.jpg")   # doctest: +SKIP
+    (PosixPath('photos/things/more.zip'), 'rocket.jpg')
+    >>> locate({"old": "data/old"}, "old/cat/1.jpg")     # doctest: +SKIP
+    (PosixPath('data/old/cat/1.jpg'), None)
     """
     parts = PurePosixPath(rel).parts
     if PurePosixPath(rel).is_absolute() or ".." in parts or not parts:
@@ -420,6 +464,11 @@ def read_bytes(root, rel: str) -> bytes:
 
     Raises OSError when the file or member is gone or the archive cannot be read; the member's
     declared size is held to the same budget as in the scan.
+
+    Examples
+    --------
+    >>> read_bytes("photos", "things/more.zip/rocket.jpg")[:3]   # doctest: +SKIP
+    b'\\xff\\xd8\\xff'
     """
     where, name = locate(root, rel)
     if name is None:
