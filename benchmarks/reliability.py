@@ -3,7 +3,8 @@
     python benchmarks/reliability.py            # the default suite's cases (about a minute)
     python benchmarks/reliability.py --slow     # adds the thousands of fuzz cases
 
-Runs tests/test_reliability.py, tests/test_fuzz.py and tests/test_faults.py with pytest; each test
+Runs tests/test_reliability.py, tests/test_fuzz.py, tests/test_faults.py and tests/test_sources.py
+(archives, hostile members among them, and several sources) with pytest; each test
 records what it tried (tests/_tally.py), and this script adds the records up and prints them with
 pytest's own pass/fail line. "data lost" counts source files whose bytes, mode or modification time
 changed, and interrupted scans whose rerun did not give the undisturbed scan's bytes.
@@ -20,7 +21,7 @@ import tempfile
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-SUITES = ["tests/test_reliability.py", "tests/test_fuzz.py", "tests/test_faults.py"]
+SUITES = ["tests/test_reliability.py", "tests/test_fuzz.py", "tests/test_faults.py", "tests/test_sources.py"]
 LABELS = {"files": "source files tried", "fuzz": "fuzz cases", "faults": "faults injected",
           "refused": "hostile archive members refused", "lost": "data lost"}
 
