@@ -215,7 +215,7 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     if not isinstance(max_pixels, int) or isinstance(max_pixels, bool) or max_pixels <= 0:
         raise ParameterError(f"max_pixels must be a positive int; got max_pixels={max_pixels!r}")
     files, links, misnamed, refused, skipped, layouts, order = [], [], [], {}, [], {}, []
-    where, columns = {}, {"label": [], "group": [], "given_split": [], "source": []}
+    members, bases, columns = {}, {}, {"label": [], "group": [], "given_split": [], "source": []}
     for name, root_path in named:
         found = walk(root_path, include_hidden=include_hidden)
         prefix = f"{name}/" if name else ""
@@ -232,9 +232,8 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
             columns[key] += assigned[key]
         columns["source"] += [name or root_path.resolve().name] * len(entries)
         # a worker on another machine has another working folder: send it absolute paths
-        base = os.fspath(root_path.resolve() if cluster is not None else root_path)
-        for rel in found.files:
-            where[prefix + rel] = found.members.get(rel) or os.path.join(base, rel)
+        bases[name] = os.fspath(root_path.resolve() if cluster is not None else root_path)
+        members.update({prefix + rel: member for rel, member in found.members.items()})
         files += [prefix + rel for rel in found.files]
         links += [(prefix + rel, root_path / rel) for rel in found.links]
         misnamed += [prefix + rel for rel in found.misnamed]
@@ -245,14 +244,15 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
               "version": _version(), "facts": list(FACTS)}
     logged = _read_journal(journal, header) if journal is not None else []
     known = _known_facts(previous, logged)
+    where = functools.partial(_location, members, bases)
     reused, todo = _split_unchanged(where, files, known, resolve(progress))
 
     pieces = [reused]
     if todo and cluster is None and resolve_jobs(jobs) > 1:
         preload()  # before the pool forks, so that workers do not each import Pillow and scipy
     work = functools.partial(sources.probe_unit, max_pixels=max_pixels, probe=probe)
-    tasks = sources.tasks([where[rel] for rel in todo])
-    results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(tasks), jobs), cluster=cluster)
+    tasks = sources.tasks(where(rel) for rel in todo)
+    results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(todo), jobs), cluster=cluster)
     facts_each = (facts for task_facts in results for facts in task_facts)
     with _JournalWriter(journal, header, fresh=not logged) as log:
         batch = []
@@ -288,6 +288,18 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
                         "links": len(links), "misnamed": len(misnamed), "refused": len(refused),
                         "skipped_junk": len(skipped), "skipped_examples": skipped[:5]}
     return df
+
+
+def _location(members: dict, bases: dict, rel: str):
+    """Where manifest path ``rel`` is read from: its :class:`sources.Member`, or the file's path
+    (joined when asked for, so that a million-file scan holds no second copy of every path)."""
+    member = members.get(rel)
+    if member is not None:
+        return member
+    if "" in bases:  # one root: paths are relative to it
+        return os.path.join(bases[""], rel)
+    name, inner = rel.split("/", 1)
+    return os.path.join(bases[name], inner)
 
 
 def _without_archive(rel: str, archive) -> str:
@@ -365,7 +377,7 @@ def _known_facts(previous, logged: list):
     return known[usable].set_index("path")
 
 
-def _split_unchanged(where: dict, files: list, known, progress):
+def _split_unchanged(where, files: list, known, progress):
     """``(reused rows, paths to probe)``: a row is reused when the file's size and mtime match (for
     an archive member, the size the archive declares and the archive's mtime)."""
     if known is None or not len(known):
@@ -374,7 +386,7 @@ def _split_unchanged(where: dict, files: list, known, progress):
     mtime = known["mtime_ns"].to_dict()
     unchanged, todo = [], []
     for rel in progress(files, total=len(files), label="rescan"):
-        if rel in size and _stat_matches(where[rel], size[rel], mtime[rel]):
+        if rel in size and _stat_matches(where(rel), size[rel], mtime[rel]):
             unchanged.append(rel)
         else:
             todo.append(rel)

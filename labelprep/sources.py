@@ -231,30 +231,31 @@ def _over_limits(size: int, packed: int) -> str:
 
 # ------------------------------------------------------------------ the scan's tasks
 
-def tasks(entries: list) -> list:
+def tasks(entries):
     """Group the locations of files to probe (a path, or a :class:`Member`) into scan tasks.
 
     Members of one archive share a task, so the archive is opened once per task; ``entries`` come
     in path order, in which every archive's members are consecutive.
 
+    A generator, so that a million paths are never held twice.
+
     Examples
     --------
-    >>> tasks(["a.jpg", "b.jpg"])
+    >>> list(tasks(["a.jpg", "b.jpg"]))
     [['a.jpg'], ['b.jpg']]
     """
-    out, run = [], []
+    run = []
     for entry in entries:
         if run and (not isinstance(entry, Member) or entry.archive != run[0].archive
                     or (entry.kind != "tgz" and len(run) == _MEMBERS_PER_TASK)):
-            out.append(run)
+            yield run
             run = []
         if isinstance(entry, Member):
             run.append(entry)
         else:
-            out.append([entry])
+            yield [entry]
     if run:
-        out.append(run)
-    return out
+        yield run
 
 
 def probe_unit(task: list, *, max_pixels: int, probe) -> list:
