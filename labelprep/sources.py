@@ -370,6 +370,7 @@ def label_tables(labels, named: list) -> dict:
     for item in labels:
         text = os.fspath(item)
         key, sep, table = text.partition("=")
+        key = key if key in by_name else os.path.normpath(key) if key else key  # "new/" is "new"
         if sep and key in by_name:
             out[by_name[key]] = table
         elif len(named) == 1:

@@ -340,6 +340,18 @@ class TestSeveralSources:
         with pytest.raises(ParameterError, match="SOURCE=TABLE, SOURCE one of old, new"):
             scan([old, new], labels=str(table), jobs=1)
 
+    def test_an_archive_as_one_of_several_roots(self, tmp_path, write_image):
+        old, _ = _two_sources(tmp_path, write_image)
+        archive = _zip(tmp_path / "more.zip", {"owl/a.jpg": _jpeg(1)})
+        table = tmp_path / "t.csv"
+        table.write_text("path,label\nowl/a.jpg,barn owl\n", encoding="utf-8")
+        m = scan([old, archive], labels=[f"{tmp_path / 'more.zip'}/={table}"], jobs=1)
+        rows = _by_path(m)
+        assert rows["more.zip/owl/a.jpg"]["source"] == "more.zip"
+        assert rows["more.zip/owl/a.jpg"]["label"] == "barn owl" and rows["more.zip/owl/a.jpg"]["fault"] == ""
+        roots = sources.roots_of(sources.describe(sources.name_roots([old, archive])))
+        assert sources.read_bytes(roots, "more.zip/owl/a.jpg") == _jpeg(1)
+
     def test_group_by_source(self, tmp_path, write_image):
         old, new = _two_sources(tmp_path, write_image)
         m = scan([old, new], group_by_source=True, jobs=1)
