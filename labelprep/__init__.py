@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import importlib
 
-__version__ = "0.2.0"
+__version__ = "0.3.0"
 
 # public name -> module that defines it; module names differ from function names so that
 # importing a submodule never shadows the function of the same name in this namespace
