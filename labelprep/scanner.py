@@ -13,6 +13,7 @@ safely written (the manifest is then the cache).
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import json
 import os
@@ -254,7 +255,9 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     tasks = sources.tasks(where(rel) for rel in todo)
     results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(todo), jobs), cluster=cluster)
     facts_each = (facts for task_facts in results for facts in task_facts)
-    with _JournalWriter(journal, header, fresh=not logged) as log:
+    # zip stops on ``todo`` and leaves ``results`` suspended: close it here, not when it is
+    # collected, so that a signal arriving while the pool shuts down is raised, not swallowed
+    with contextlib.closing(results), _JournalWriter(journal, header, fresh=not logged) as log:
         batch = []
         for rel, facts in zip(todo, resolve(progress)(facts_each, total=len(todo), label="scan files")):
             row = {"path": rel, **facts}
