@@ -44,6 +44,9 @@ _CODE_LIST = [
     IssueCode("exact-copy", WARNING, "group", "byte-identical to another file"),
     IssueCode("near-copy", WARNING, "group", "looks like another file that is not byte-identical to it: perceptual hashes of the whole image or of a centred box within the radius"),
     IssueCode("label-conflict", ERROR, "group", "its near-duplicate cluster holds more than one label"),
+    IssueCode("same-scene", WARNING, "group", "the same picture as another file under a heavier edit (crop, rotation, reframing, colour shift): proposed by learned features, confirmed by matching keypoints under one geometric transform"),
+    IssueCode("suspect-label", WARNING, "vet", "its nearest neighbours in feature space mostly carry one other label, named in likely_label"),
+    IssueCode("lone-image", WARNING, "vet", "far from every other file in feature space (oddness at or above the limit): off-topic, broken or of a class of its own"),
     IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
 ]
 

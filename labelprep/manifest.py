@@ -56,6 +56,7 @@ _COLUMN_LIST = [
     Column("issues", "str", "check, group", "';'-separated issue codes, sorted; empty when clean"),
     Column("dup_group", "Int64", "group", "id shared by every member of a near-duplicate cluster (exact copies included); empty for a file with no copy"),
     Column("split", "str", "split", "train, val or test; empty for rows left out"),
+    Column("likely_label", "str", "vet", "the label a file's features point to when its own label looks wrong (suspect-label); empty when its label is plausible or it was not vetted"),
     # scan facts
     Column("given_split", "str", "scan", "split named by a train/val/test folder in the source tree; empty otherwise"),
     Column("source", "str", "scan", "the source a file came from when several roots were scanned in one run: the root's folder or archive name (made unique with -2, -3, ...), which the path starts with; absent with one root"),
@@ -77,6 +78,13 @@ _COLUMN_LIST = [
     Column("bundle", "Int64", "group", "id of the rows that must share one split: near-duplicate clusters joined with user groups"),
     Column("mixed_labels", "boolean", "group", "the row's near-duplicate cluster holds more than one label (label-conflict unless kept)"),
     Column("keeper", "boolean", "group", "the one file kept per near-duplicate cluster (highest resolution, then largest file, then path); true for files with no copy"),
+    Column("scene_similarity", "Float64", "group", "cosine similarity of learned features to the closest file it is linked to as same-scene; empty otherwise"),
+    Column("scene_inliers", "Int64", "group", "keypoint matches consistent with one geometric transform on that same-scene link; empty otherwise"),
+    # vetting labels
+    Column("label_doubt", "Float64", "vet", "share (0-1) of the nearest neighbours' similarity-weighted votes held by the most voted other label; empty when not vetted"),
+    Column("oddness", "Float64", "vet", "share of the file's features the data set's main directions (PCA) leave unexplained, over the median share; 1 is typical, lone-image from --max-oddness"),
+    Column("peer_same", "str", "vet", "for a flagged file: the nearest neighbour with its own label"),
+    Column("peer_other", "str", "vet", "for a flagged file: the nearest neighbour with another label (the likely one when named)"),
     # splitting
     Column("fold", "Int64", "split", "cross-validation fold (0..K-1) when --folds K was asked; empty otherwise"),
 ]

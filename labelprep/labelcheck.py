@@ -1,0 +1,226 @@
+"""The vet stage: files whose label their features contradict, and files far from every class.
+
+Each usable labelled row is described by a unit vector: the learned embedding when one is given
+(:mod:`labelprep.embedding`), else the model-free ``sketch`` (the 32x32 grayscale thumbnail of
+the scan, each standardised to zero mean and unit variance, which is enough for digits, letters
+and icons). Both are reduced by PCA fitted on a seeded sample (:data:`DIMENSIONS`), which keeps
+the search cheap at a million rows and drops the directions that only carry noise.
+
+Its ``neighbours`` most similar rows (:func:`labelprep.vectorsearch.top_k`) vote, out of fold:
+the row itself and the members of its own near-duplicate cluster never vote, so a copy cannot
+vouch for its original. A vote weighs its cosine similarity to the fourth power, so that the
+closest neighbours dominate. ``label_doubt`` is the largest share of the votes held by another
+label; at ``min_doubt`` or more the row gets that label in ``likely_label`` and the warning
+``suspect-label``. ``oddness`` is the share of the row's (standardised) vector that the PCA
+components leave unexplained, over the median of that share in the data set: a file unlike the
+rest (a photo among digits scores 5.7-16, the digits at most 4.3) cannot be rebuilt from the
+directions the data set varies along; at ``max_oddness`` or more the row is ``lone-image``.
+``peer_same``/``peer_other`` name, for flagged rows, the nearest neighbour with the row's own
+label and the nearest with another (the likely one when there is one): the report shows them
+beside the file.
+"""
+
+from __future__ import annotations
+
+from . import codes
+from .errors import ParameterError
+
+NEIGHBOURS = 10
+MIN_DOUBT = 0.8
+"""Measured by benchmarks/label_noise.py: on scikit-learn's digits with 4% planted wrong labels,
+0.8 gives precision 0.93 at recall 0.94 from the sketch; 0.5 gives 0.78 at 1.0."""
+MAX_ODDNESS = 5.0
+"""Measured on scikit-learn's digits with ten of scikit-image's photos planted (the label-noise
+benchmark): the photos score 5.7-16.5, the 1,797 digits at most 4.3."""
+DIMENSIONS = {"sketch": 32, "embedding": 64}
+_POWER = 4
+_PCA_SAMPLE = 20_000
+_STAGE = "vet"
+
+
+def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
+        max_oddness=MAX_ODDNESS, seed=0):
+    """Flag likely mislabelled files and outliers.
+
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        Needs ``path`` and ``label``; ``sketch`` unless ``features`` is given; uses ``issues``
+        (rows with an error code are left out) and ``dup_group`` (copies do not vote).
+    features : ndarray, shape (len(manifest), d), optional
+        One embedding per row (rows of NaN where none); default the model-free sketch.
+    neighbours : int, default 10
+        Rows that vote on each row's label.
+    min_doubt : float in (0, 1], default 0.8
+        Share of the votes another label needs to be named in ``likely_label``.
+    max_oddness : float > 1, default 5.0
+        ``oddness`` from which a file is flagged ``lone-image``.
+    seed : int
+        Seeds the PCA sample and the cell search, so the result is reproducible.
+
+    Returns
+    -------
+    pandas.DataFrame
+        A copy with ``likely_label``, ``label_doubt``, ``oddness``, ``peer_same``,
+        ``peer_other`` and the codes ``suspect-label`` and ``lone-image``; ``attrs["vet"]``
+        records the options and the feature kind.
+
+    Examples
+    --------
+    >>> import numpy as np, pandas as pd
+    >>> m = pd.DataFrame({"path": [f"{i}.png" for i in range(6)], "label": list("aaabbb")})
+    >>> x = np.array([[1, 0], [1, .1], [0, 1], [0, 1], [0, 1.1], [.1, 1]])
+    >>> vet(m, features=x, neighbours=2)["likely_label"].tolist()
+    ['', '', 'b', '', '', '']
+    """
+    import numpy as np
+    import pandas as pd
+
+    if not isinstance(manifest, pd.DataFrame):
+        raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
+    missing = [c for c in ("path", "label") if c not in manifest.columns]
+    if features is None and "sketch" not in manifest.columns:
+        missing.append("sketch")
+    if missing:
+        raise ParameterError(f"manifest lacks column(s) {', '.join(missing)}")
+    if isinstance(neighbours, bool) or not isinstance(neighbours, (int, np.integer)) or neighbours < 1:
+        raise ParameterError(f"neighbours must be a positive int, got neighbours={neighbours!r}")
+    if not 0 < min_doubt <= 1:
+        raise ParameterError(f"min_doubt must be in (0, 1], got min_doubt={min_doubt!r}")
+    if not max_oddness > 1:
+        raise ParameterError(f"max_oddness must be above 1, got max_oddness={max_oddness!r}")
+    if features is not None:
+        features = np.asarray(features, dtype=np.float32)
+        if features.ndim != 2 or len(features) != len(manifest):
+            raise ParameterError(f"features must have one row per manifest row ({len(manifest)}), "
+                                 f"got shape {features.shape}")
+
+    from .manifest import coerce
+
+    rows = coerce(manifest)
+    n = len(rows)
+    labels = rows["label"].to_numpy(dtype=object)
+    issues = rows["issues"] if "issues" in rows.columns else pd.Series([""] * n, dtype=object)
+    usable = ~codes.errors_mask(issues).to_numpy() & (labels != "")
+    if features is None:
+        usable &= rows["sketch"].to_numpy(dtype=object) != ""
+    else:
+        usable &= np.isfinite(features).all(axis=1)
+    kind = "sketch" if features is None else "embedding"
+    at = np.flatnonzero(usable)
+    out = rows.copy()
+    likely = np.full(n, "", dtype=object)
+    doubt = np.full(n, np.nan)
+    oddness = np.full(n, np.nan)
+    peer_same = np.full(n, "", dtype=object)
+    peer_other = np.full(n, "", dtype=object)
+    if len(at) > neighbours:
+        vectors, residual = unit_vectors(rows, at, features, seed)
+        blocked = None
+        if "dup_group" in rows.columns:
+            blocked = rows["dup_group"].astype("Int64").fillna(-1).to_numpy(dtype=np.int64)[at]
+        from .vectorsearch import top_k
+
+        index, sims = top_k(vectors, int(neighbours), blocked=blocked, seed=seed)
+        names, code = np.unique(labels[at], return_inverse=True)
+        share, nearest = _votes(index, sims, code, len(names))
+        own = code
+        others = share.copy()
+        others[np.arange(len(at)), own] = -1.0
+        best = np.argmax(others, axis=1)
+        doubt[at] = np.round(others[np.arange(len(at)), best], 4)
+        suspect = doubt[at] >= min_doubt
+        likely[at[suspect]] = names[best[suspect]]
+        oddness[at] = np.round(residual / max(float(np.median(residual)), 1e-6), 4)
+        flagged = suspect | (oddness[at] >= max_oddness)
+        paths = rows["path"].to_numpy(dtype=object)[at]
+        same_at = nearest[np.arange(len(at)), own]
+        other_at = np.where(suspect, nearest[np.arange(len(at)), best], _nearest_other(index, code))
+        for target, found in ((peer_same, same_at), (peer_other, other_at)):
+            hit = flagged & (found >= 0)
+            target[at[hit]] = paths[found[hit]]
+    out["likely_label"] = pd.Series(likely, index=rows.index, dtype=object)
+    out["label_doubt"] = pd.array(doubt, dtype="Float64")
+    out["oddness"] = pd.array(oddness, dtype="Float64")
+    out["peer_same"] = pd.Series(peer_same, index=rows.index, dtype=object)
+    out["peer_other"] = pd.Series(peer_other, index=rows.index, dtype=object)
+    found = {"suspect-label": likely != "", "lone-image": np.nan_to_num(oddness) >= max_oddness}
+    out["issues"] = codes.replace_stage_codes(issues.astype(str), _STAGE, found)
+    out = coerce(out)
+    out.attrs["vet"] = {"features": kind, "neighbours": int(neighbours), "min_doubt": float(min_doubt),
+                        "max_oddness": float(max_oddness), "seed": seed,
+                        "vetted": int(len(at)), "suspect": int(found["suspect-label"].sum()),
+                        "lone": int(found["lone-image"].sum())}
+    return out
+
+
+def unit_vectors(rows, at, features, seed):
+    """Unit rows (float32) for the rows ``at`` (standardised sketches or embeddings, PCA-reduced)
+    and the share of each row the PCA leaves unexplained."""
+    import numpy as np
+
+    from .hashing import sketch_pixels
+
+    if features is None:
+        raw = sketch_pixels(rows["sketch"].to_numpy(dtype=object)[at]).astype(np.float32)
+        # 2x2 means: 256 values per image keep a digit's or a letter's shape at a quarter the cost
+        x = raw.reshape(len(at), 16, 2, 16, 2).mean(axis=(2, 4)).reshape(len(at), -1)
+        x -= x.mean(axis=1, keepdims=True)
+        x /= np.maximum(x.std(axis=1, keepdims=True), 1e-3)
+        dim = DIMENSIONS["sketch"]
+    else:
+        x = features[at].astype(np.float32)
+        x /= np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
+        dim = DIMENSIONS["embedding"]
+    return reduce(x, dim, seed)
+
+
+def reduce(x, dim, seed):
+    """PCA to ``dim`` components fitted on a seeded sample of rows, then unit length; and the
+    share of each centred row's energy outside the components."""
+    import numpy as np
+
+    rng = np.random.default_rng(seed)
+    sample = x if len(x) <= _PCA_SAMPLE else x[np.sort(rng.choice(len(x), _PCA_SAMPLE, replace=False))]
+    mean = sample.mean(axis=0, dtype=np.float64)
+    centred = sample - mean
+    # eigenvectors of the covariance: cheaper than an SVD of the sample when rows outnumber columns
+    values, vectors = np.linalg.eigh(centred.T @ centred)
+    vt = vectors[:, np.argsort(-values, kind="stable")[:dim]].T
+    # a component's sign is arbitrary: fix it so that the result is the same on any machine
+    basis = vt * np.sign(vt[:, :1] + (vt[:, :1] == 0))
+    centred = (x - mean.astype(np.float32))
+    z = centred @ basis.T.astype(np.float32)
+    kept = (z ** 2).sum(axis=1)
+    residual = np.clip(1.0 - kept / np.maximum((centred ** 2).sum(axis=1), 1e-12), 0.0, 1.0)
+    z /= np.maximum(np.sqrt(kept), 1e-12)[:, None]
+    return z.astype(np.float32), residual
+
+
+def _votes(index, sims, code, classes):
+    """Weighted vote shares (rows, classes) and, per class, the nearest voter of that class."""
+    import numpy as np
+
+    n, k = index.shape
+    valid = index >= 0
+    weight = np.where(valid, np.clip(np.nan_to_num(sims, neginf=0.0), 0, None) ** _POWER, 0.0)
+    voter = np.where(valid, code[np.where(valid, index, 0)], -1)
+    share = np.zeros((n, classes))
+    nearest = np.full((n, classes), -1, dtype=np.int64)
+    rows = np.arange(n)
+    for j in range(k - 1, -1, -1):  # the last write per class is its nearest voter
+        ok = voter[:, j] >= 0
+        np.add.at(share, (rows[ok], voter[ok, j]), weight[ok, j])
+        nearest[rows[ok], voter[ok, j]] = index[ok, j]
+    total = share.sum(axis=1, keepdims=True)
+    return share / np.where(total > 0, total, 1.0), nearest
+
+
+def _nearest_other(index, code):
+    """Per row, the nearest neighbour whose label differs from the row's; -1 when none."""
+    import numpy as np
+
+    valid = index >= 0
+    differs = valid & (code[np.where(valid, index, 0)] != code[:, None])
+    first = np.argmax(differs, axis=1)
+    return np.where(differs.any(axis=1), index[np.arange(len(index)), first], -1)
