@@ -133,6 +133,26 @@ SPLIT_OPTIONS = _stack(
     click.option("--keep-from", type=_existing_file, default=None, metavar="OLD_MANIFEST",
                  help="Keep every file already assigned in this manifest where it was; place only new files."),
 )
+FEATURE_OPTIONS = _stack(
+    click.option("--features", type=click.Choice(["auto", "sketch", "model"]), default=defaults.FEATURES,
+                 show_default=True,
+                 help="What vet and the same-scene check compare: 'model' runs a pretrained CNN "
+                      "(EfficientNet-Lite0, needs labelprep[features]) on every image, 'sketch' "
+                      "uses the scan's 32x32 thumbnails (no model), 'auto' the CNN when installed."),
+    click.option("--features-model", type=_existing_file, default=None, metavar="FILE",
+                 help="Your own ONNX model instead (float32 NCHW RGB in 0-1 at its input size; "
+                      "its first output is the embedding)."),
+)
+VET_OPTIONS = _stack(
+    click.option("--neighbours", type=click.IntRange(min=1), default=defaults.NEIGHBOURS,
+                 show_default=True, help="Nearest files that vote on each file's label."),
+    click.option("--min-doubt", type=click.FloatRange(0, 1, min_open=True), default=defaults.MIN_DOUBT,
+                 show_default=True, metavar="SHARE",
+                 help="Share of the votes another label needs for suspect-label."),
+    click.option("--max-oddness", type=click.FloatRange(1, min_open=True), default=defaults.MAX_ODDNESS,
+                 show_default=True, metavar="RATIO",
+                 help="Oddness (1 = typical) from which a file is flagged lone-image."),
+)
 _fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="never",
                         show_default=True,
                         help="Exit with status 1 when any file has an issue of this severity or worse.")
@@ -288,6 +308,41 @@ def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
 
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
+@VET_OPTIONS
+@FEATURE_OPTIONS
+@click.option("--root", type=_existing_root, default=None,
+              help="Folder the manifest's paths are relative to (default: from the sidecar); "
+                   "needed by the learned features only.")
+@click.option("--seed", type=int, default=defaults.SEED, show_default=True, help="Random seed.")
+@_jobs
+@_quiet
+def vet(manifest_path, neighbours, min_doubt, max_oddness, features, features_model, root, seed,
+        jobs, quiet):
+    """Find files that look mislabelled (likely_label) and files far from every class.
+
+    Each file's nearest neighbours in feature space vote on its label, out of fold (its own
+    near-duplicate cluster does not vote). Writes likely_label, label_doubt, oddness,
+    peer_same, peer_other and the warnings suspect-label and lone-image into MANIFEST.
+    """
+    from .embedding import cache_path, features_for
+    from .labelcheck import vet as run
+    from .manifest import read_sidecar
+
+    m = _read(manifest_path)
+    vectors, facts = features_for(m, root or _root_from(read_sidecar(manifest_path)), features=features,
+                                  model=features_model, jobs=jobs, cache=cache_path(manifest_path),
+                                  progress=_progress(quiet))
+    m = run(m, features=vectors, neighbours=neighbours, min_doubt=min_doubt, max_oddness=max_oddness,
+            seed=seed)
+    _write_back(m, manifest_path, "vet", {**m.attrs["vet"], **facts})
+    facts = m.attrs["vet"]
+    _say(quiet, f"{facts['vetted']} files vetted on {facts['features']} features: "
+                f"{facts['suspect']} suspect-label, {facts['lone']} lone-image")
+    _print_issues(m, quiet)
+
+
+@main.command()
+@click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
 @_quiet
 def split(manifest_path, ratios, seed, folds, keep_from, quiet):
@@ -416,13 +471,15 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @SCAN_OPTIONS
 @CHECK_OPTIONS
 @GROUP_OPTIONS
+@VET_OPTIONS
+@FEATURE_OPTIONS
 @SPLIT_OPTIONS
 @_cluster
 @_fail_on
 @_force
 @_quiet
 def prepare(roots, out, fail_on, quiet, labels, **options):
-    """Scan, check, group, split and report each ROOT in one go, into DIR.
+    """Scan, check, group, vet, split and report each ROOT in one go, into DIR.
 
     A ROOT is a folder or an archive; with several, each is a source (see scan).
     """

@@ -36,7 +36,7 @@ _STAGE = "group"
 
 
 def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, flips=False,
-          progress=None, cluster=None):
+          progress=None, cluster=None, scene_links=None):
     """Cluster exact and near-duplicates and mark them in a new manifest.
 
     Parameters
@@ -59,6 +59,10 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     cluster : str, optional
         Address of a Dask scheduler: the near-pair search runs as tasks on its workers
         (:func:`labelprep.neighbors.radius_pairs`); the same result.
+    scene_links : labelprep.scenes.Links, optional
+        Same-scene pairs verified by :func:`labelprep.scenes.scene_links`: they join the
+        clusters too; rows they join that hashes left apart get ``same-scene`` and the
+        ``scene_similarity``/``scene_inliers`` evidence.
 
     Returns
     -------
@@ -106,6 +110,13 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     sha = _text(rows, "sha256")
     exact = _same_value_links(sha)
     near = _near_links(rows, int(max_distance), flips, progress, cluster)
+    same_scene = np.zeros(n, dtype=bool)
+    if scene_links is not None:
+        from .scenes import merge
+
+        hash_cluster = _components(n, np.concatenate([exact, near], axis=1))
+        scene, same_scene, scene_similarity, scene_inliers = merge(scene_links, order, hash_cluster)
+        near = np.concatenate([near, scene], axis=1)
     cluster = _components(n, np.concatenate([exact, near], axis=1))
     size = np.bincount(cluster, minlength=n)[cluster]
     in_cluster = size > 1
@@ -113,8 +124,10 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     sha_count = pd.Series(sha).map(pd.Series(sha).value_counts()).to_numpy()
     is_exact = (sha != "") & (sha_count > 1)
     # a near copy has a cluster mate that is not byte-identical to it
-    distinct_sha = pd.Series(sha).groupby(cluster).transform("nunique").to_numpy()
-    is_near = in_cluster & ((distinct_sha > 1) | (sha == ""))
+    hashed = cluster if scene_links is None else hash_cluster
+    distinct_sha = pd.Series(sha).groupby(hashed).transform("nunique").to_numpy()
+    hash_size = size if scene_links is None else np.bincount(hashed, minlength=n)[hashed]
+    is_near = (hash_size > 1) & ((distinct_sha > 1) | (sha == ""))
     labels = _text(rows, "label")
     named = pd.Series(np.where(labels == "", None, labels))
     mixed = named.groupby(cluster).transform("nunique").to_numpy() > 1
@@ -131,8 +144,13 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     out["keeper"] = pd.array(_keepers(rows, cluster), dtype="boolean")
     out["mixed_labels"] = pd.array(mixed, dtype="boolean")
     issues = out["issues"] if "issues" in out.columns else pd.Series([""] * n, dtype=str)
-    found = {"exact-copy": is_exact, "near-copy": is_near,
+    found = {"exact-copy": is_exact, "near-copy": is_near, "same-scene": same_scene,
              "label-conflict": mixed & (not keep_conflicts)}
+    out = out.drop(columns=["scene_similarity", "scene_inliers"], errors="ignore")
+    if scene_links is not None:
+        out["scene_similarity"] = pd.array(scene_similarity, dtype="Float64")
+        out["scene_inliers"] = pd.array(np.where(scene_inliers >= 0, scene_inliers, 0), dtype="Int64")
+        out.loc[~same_scene, "scene_inliers"] = pd.NA
     out["issues"] = codes.replace_stage_codes(issues.astype(str), _STAGE, found)
     # back to the caller's row order and index
     restored = out.iloc[np.argsort(order, kind="stable")]

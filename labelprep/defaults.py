@@ -24,3 +24,9 @@ MEMBER_BYTES = 512 * 2**20
 # members up to 1 MiB are exempt, as a flat image may compress that well and costs nothing
 MAX_RATIO = 100
 RATIO_GRACE = 2**20
+# the vet stage (labelprep.labelcheck says how each was measured); features: auto uses the
+# learned features when labelprep[features] is installed
+FEATURES = "auto"
+NEIGHBOURS = 10
+MIN_DOUBT = 0.8
+MAX_ODDNESS = 5.0

@@ -320,3 +320,201 @@ def validate_model(model):
     if not Path(model).is_file():
         raise ParameterError(f"features_model {model} is not a file")
     return os.fspath(model)
+
+
+CACHE_SUFFIX = ".features.npz"
+BATCH = 16  # images per inference call: amortises onnxruntime's per-call cost (feature_speed.py)
+
+
+def cache_path(manifest_path) -> Path:
+    """Where the embeddings of ``manifest_path``'s files are kept between runs."""
+    manifest_path = Path(manifest_path)
+    return manifest_path.with_name(manifest_path.name + CACHE_SUFFIX)
+
+
+def embed(manifest, root, *, model=None, jobs=None, cluster=None, cache=None, progress=None):
+    """One embedding per usable row of ``manifest``, computed in the scan's pool, cached by digest.
+
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        Needs ``path`` and ``sha256``; rows with an error code in ``issues`` get no embedding.
+    root : path or dict
+        What the manifest's paths are relative to (as :func:`labelprep.sources.locate` takes).
+    model : path, optional
+        A user's ONNX model instead of EfficientNet-Lite0.
+    jobs, cluster
+        As in :func:`labelprep.scan`: local worker processes or a Dask scheduler address.
+    cache : path, optional
+        An ``.features.npz`` file (:func:`cache_path`): rows whose ``sha256`` it holds for the
+        same model digest are not decoded again, and the file is rewritten with the result.
+    progress : callable, optional
+
+    Returns
+    -------
+    (ndarray, dict)
+        float32 ``(len(manifest), d)`` with NaN rows for files not embedded, and what the
+        sidecar records: model, digest, embedded, reused.
+    """
+    import numpy as np
+
+    from . import codes
+    from .manifest import coerce
+    from .parallel import map_ordered
+    from .progress import resolve
+
+    require()
+    model = validate_model(model)
+    facts = describe(model)
+    if model is None:
+        default_model()  # convert once here, not in every worker at the same time
+    rows = coerce(manifest)
+    sha = rows["sha256"].to_numpy(dtype=object)
+    issues = rows["issues"] if "issues" in rows.columns else None
+    usable = sha != ""
+    if issues is not None:
+        usable &= ~codes.errors_mask(issues).to_numpy()
+    known = _read_cache(cache, facts["sha256"])
+    todo = [i for i in np.flatnonzero(usable) if sha[i] not in known]
+    # one file per digest: a byte-identical copy has the same embedding
+    first = {}
+    for i in todo:
+        first.setdefault(sha[i], i)
+    order = sorted(first.values(), key=lambda i: rows["path"].iat[i])
+    batches = [order[s:s + BATCH] for s in range(0, len(order), BATCH)]
+    paths = rows["path"].to_numpy(dtype=object)
+    work = [[paths[i] for i in b] for b in batches]
+    found = dict(known)
+    show = resolve(progress)
+    results = map_ordered(_embed_batch, work, jobs=jobs, chunksize=1, cluster=cluster,
+                          shared=(_plain_root(root), model))
+    for batch, vectors in show(zip(batches, results), total=len(batches), label="features"):
+        for i, vector in zip(batch, vectors):
+            found[sha[i]] = vector
+    width = max((len(v) for v in found.values()), default=0)
+    out = np.full((len(rows), width), np.nan, dtype=np.float32)
+    for i in np.flatnonzero(usable):
+        vector = found.get(sha[i])
+        if vector is not None and len(vector) == width:  # a batch that failed whole has width 0
+            out[i] = vector
+    if cache is not None:
+        _write_cache(cache, facts["sha256"], {s: found[s] for s in sorted(set(sha[usable])) if s in found})
+    facts.update(embedded=len(order), reused=int(usable.sum()) - len(todo))
+    return out, facts
+
+
+def _plain_root(root):
+    """``root`` with plain str paths, so a Dask worker can unpickle it anywhere."""
+    if isinstance(root, dict):
+        return {name: os.fspath(p) for name, p in root.items()}
+    return os.fspath(root)
+
+
+def _embed_batch(paths, shared):
+    """Embeddings (float16 rows; NaN for a file that fails to decode) of one batch of paths."""
+    import io
+
+    import numpy as np
+    from PIL import Image, ImageOps
+
+    from .probe import register_plugins
+    from .sources import read_bytes
+
+    root, model = shared
+    register_plugins()
+    net = embedder(model)
+    pixels, ok = [], []
+    for rel in paths:
+        try:
+            with Image.open(io.BytesIO(read_bytes(root, rel))) as im:
+                # reduced-scale decode: a JPEG is decoded at the smallest DCT scale >= the input side
+                im.draft("RGB", (net.side, net.side))
+                pixels.append(net.pixels(ImageOps.exif_transpose(im)))
+                ok.append(True)
+        except Exception:  # noqa: BLE001 - the scan already reported why; no embedding here
+            ok.append(False)
+    out = np.full((len(paths), 0), np.nan, dtype=np.float16)
+    if pixels:
+        vectors = net.run(np.stack(pixels)).astype(np.float16)
+        out = np.full((len(paths), vectors.shape[1]), np.nan, dtype=np.float16)
+        out[np.asarray(ok)] = vectors
+    return list(out)
+
+
+def _read_cache(cache, digest) -> dict:
+    """``{sha256: vector}`` from a cache file made with the model of ``digest``; else empty."""
+    import numpy as np
+
+    if cache is None or not Path(cache).is_file():
+        return {}
+    try:
+        with np.load(cache, allow_pickle=False) as data:
+            if str(data["model_sha256"]) != digest:
+                return {}
+            return dict(zip(data["sha256"].tolist(), data["vectors"]))
+    except (OSError, KeyError, ValueError):  # a torn or foreign file is only a cache miss
+        return {}
+
+
+def _write_cache(cache, digest, vectors: dict):
+    import numpy as np
+
+    cache = Path(cache)
+    keys = list(vectors)
+    width = len(next(iter(vectors.values()))) if vectors else 0
+    matrix = np.stack([vectors[k] for k in keys]).astype(np.float16) if keys else np.zeros((0, width), np.float16)
+    temp = cache.with_name(f".{cache.name}.{os.getpid()}.tmp")
+    with open(temp, "wb") as f:
+        np.savez(f, sha256=np.array(keys, dtype="U64"), vectors=matrix, model_sha256=np.array(digest))
+    os.replace(temp, cache)
+
+
+FEATURE_KINDS = ("auto", "sketch", "model")
+
+
+def available() -> bool:
+    """True when the features extra is installed (onnx, onnxruntime, OpenCV, the weights)."""
+    import importlib.util
+
+    return all(importlib.util.find_spec(name) is not None
+               for name in ("onnx", "onnxruntime", "cv2", WEIGHTS_PACKAGE))
+
+
+def features_for(manifest, root, *, features="auto", model=None, jobs=None, cluster=None,
+                 cache=None, progress=None):
+    """The embeddings the group and vet stages use, or None for the model-free sketch.
+
+    Parameters
+    ----------
+    features : {"auto", "sketch", "model"}
+        ``"model"`` needs the features extra (or ``model``); ``"auto"`` uses it when installed;
+        ``"sketch"`` never runs a network.
+    model : path, optional
+        A user's ONNX model (implies ``"model"`` unless ``"sketch"`` is asked).
+    root, jobs, cluster, cache, progress
+        As in :func:`embed`. With ``root`` None (the files cannot be found) ``"auto"`` falls
+        back to the sketch and ``"model"`` is an error.
+
+    Returns
+    -------
+    (ndarray or None, dict)
+        The embeddings and what the sidecar records (``{"features": "sketch"}`` without them).
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> features_for(pd.DataFrame({"path": [], "sha256": []}), None, features="sketch")
+    (None, {'features': 'sketch'})
+    """
+    if features not in FEATURE_KINDS:
+        raise ParameterError(f"features must be one of {', '.join(FEATURE_KINDS)}; got features={features!r}")
+    model = validate_model(model)
+    wanted = features == "model" or (features == "auto" and root is not None
+                                     and (model is not None or available()))
+    if not wanted:
+        return None, {"features": "sketch"}
+    if root is None:
+        raise InputError("learned features need the source files: the manifest's root is unknown (pass --root)")
+    vectors, facts = embed(manifest, root, model=model, jobs=jobs, cluster=cluster, cache=cache,
+                           progress=progress)
+    return vectors, {"features": "model", **facts}

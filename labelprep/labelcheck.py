@@ -23,18 +23,17 @@ beside the file.
 from __future__ import annotations
 
 from . import codes
+from .defaults import MAX_ODDNESS, MIN_DOUBT, NEIGHBOURS
 from .errors import ParameterError
+from .vectorsearch import pca_units, top_k
 
-NEIGHBOURS = 10
-MIN_DOUBT = 0.8
-"""Measured by benchmarks/label_noise.py: on scikit-learn's digits with 4% planted wrong labels,
-0.8 gives precision 0.93 at recall 0.94 from the sketch; 0.5 gives 0.78 at 1.0."""
-MAX_ODDNESS = 5.0
-"""Measured on scikit-learn's digits with ten of scikit-image's photos planted (the label-noise
-benchmark): the photos score 5.7-16.5, the 1,797 digits at most 4.3."""
+# The defaults (labelprep.defaults) were measured by benchmarks/label_noise.py: MIN_DOUBT 0.8 on
+# scikit-learn's digits with 4% planted wrong labels gives precision 0.93 at recall 0.94 from the
+# sketch (0.5 gives 0.78 at 1.0); MAX_ODDNESS 5.0 sits between the 1,797 digits (at most 4.3) and
+# ten of scikit-image's photos planted among them (5.7-16.5).
 DIMENSIONS = {"sketch": 32, "embedding": 64}
 _POWER = 4
-_PCA_SAMPLE = 20_000
+_SKETCH_BLOCK = 65_536  # sketches decoded at once (a million would take 4 GB as float32)
 _STAGE = "vet"
 
 
@@ -119,8 +118,6 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
         blocked = None
         if "dup_group" in rows.columns:
             blocked = rows["dup_group"].astype("Int64").fillna(-1).to_numpy(dtype=np.int64)[at]
-        from .vectorsearch import top_k
-
         index, sims = top_k(vectors, int(neighbours), blocked=blocked, seed=seed)
         names, code = np.unique(labels[at], return_inverse=True)
         share, nearest = _votes(index, sims, code, len(names))
@@ -162,9 +159,12 @@ def unit_vectors(rows, at, features, seed):
     from .hashing import sketch_pixels
 
     if features is None:
-        raw = sketch_pixels(rows["sketch"].to_numpy(dtype=object)[at]).astype(np.float32)
-        # 2x2 means: 256 values per image keep a digit's or a letter's shape at a quarter the cost
-        x = raw.reshape(len(at), 16, 2, 16, 2).mean(axis=(2, 4)).reshape(len(at), -1)
+        cells = rows["sketch"].to_numpy(dtype=object)[at]
+        x = np.empty((len(at), 256), dtype=np.float32)
+        for start in range(0, len(at), _SKETCH_BLOCK):
+            raw = sketch_pixels(cells[start:start + _SKETCH_BLOCK]).astype(np.float32)
+            # 2x2 means: 256 values per image keep a digit's or a letter's shape at a quarter the cost
+            x[start:start + len(raw)] = raw.reshape(len(raw), 16, 2, 16, 2).mean(axis=(2, 4)).reshape(len(raw), -1)
         x -= x.mean(axis=1, keepdims=True)
         x /= np.maximum(x.std(axis=1, keepdims=True), 1e-3)
         dim = DIMENSIONS["sketch"]
@@ -172,29 +172,7 @@ def unit_vectors(rows, at, features, seed):
         x = features[at].astype(np.float32)
         x /= np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
         dim = DIMENSIONS["embedding"]
-    return reduce(x, dim, seed)
-
-
-def reduce(x, dim, seed):
-    """PCA to ``dim`` components fitted on a seeded sample of rows, then unit length; and the
-    share of each centred row's energy outside the components."""
-    import numpy as np
-
-    rng = np.random.default_rng(seed)
-    sample = x if len(x) <= _PCA_SAMPLE else x[np.sort(rng.choice(len(x), _PCA_SAMPLE, replace=False))]
-    mean = sample.mean(axis=0, dtype=np.float64)
-    centred = sample - mean
-    # eigenvectors of the covariance: cheaper than an SVD of the sample when rows outnumber columns
-    values, vectors = np.linalg.eigh(centred.T @ centred)
-    vt = vectors[:, np.argsort(-values, kind="stable")[:dim]].T
-    # a component's sign is arbitrary: fix it so that the result is the same on any machine
-    basis = vt * np.sign(vt[:, :1] + (vt[:, :1] == 0))
-    centred = (x - mean.astype(np.float32))
-    z = centred @ basis.T.astype(np.float32)
-    kept = (z ** 2).sum(axis=1)
-    residual = np.clip(1.0 - kept / np.maximum((centred ** 2).sum(axis=1), 1e-12), 0.0, 1.0)
-    z /= np.maximum(np.sqrt(kept), 1e-12)[:, None]
-    return z.astype(np.float32), residual
+    return pca_units(x, dim, seed)
 
 
 def _votes(index, sims, code, classes):

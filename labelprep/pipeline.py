@@ -17,13 +17,17 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
             jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
             max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
             max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=False, ratios=defaults.RATIOS,
-            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None):
+            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None,
+            features=defaults.FEATURES, features_model=None, neighbours=defaults.NEIGHBOURS,
+            min_doubt=defaults.MIN_DOUBT, max_oddness=defaults.MAX_ODDNESS):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 
     ``root`` is a folder, an archive or a list of them (several sources, see
     :mod:`labelprep.sources`). A manifest already in ``out`` from an earlier run is used as the rescan cache: unchanged files
     are not decoded again. Options are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
-    :func:`~labelprep.group` and :func:`~labelprep.split`; ``keep_from`` is a manifest path or
+    :func:`~labelprep.group`, :func:`~labelprep.vet` and :func:`~labelprep.split` (``features``
+    and ``features_model`` as :func:`labelprep.embedding.features_for` takes them: learned
+    features add same-scene links to the clusters and drive the vet stage); ``keep_from`` is a manifest path or
     DataFrame whose split is kept. ``cluster`` (a Dask scheduler address) decodes the files on
     that cluster's workers, as in :func:`~labelprep.scan`.
 
@@ -39,7 +43,6 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     """
     from . import manifest
     from .checks import check
-    from .clusters import group
     from .reports import report
     from .scanner import journal_path, previous_manifest, scan
     from .sources import describe, name_roots, roots_of
@@ -65,8 +68,11 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     scan_facts = m.attrs.get("scan", {})
     m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
               min_spread=min_spread)
-    m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips,
-              progress=progress, cluster=cluster)
+    m, feature_facts = _group_and_vet(m, roots_of(where), target, features=features,
+                                      features_model=features_model, jobs=jobs, cluster=cluster,
+                                      progress=progress, max_distance=max_distance,
+                                      keep_conflicts=keep_conflicts, flips=flips, neighbours=neighbours,
+                                      min_doubt=min_doubt, max_oddness=max_oddness, seed=seed)
     m = split(m, ratios=ratios, seed=seed, folds=folds, keep_from=keep_from, progress=progress)
     options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,
@@ -75,11 +81,38 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
                "ratios": list(ratios), "seed": seed, "folds": folds}
     if group_by_source:
         options["group_by_source"] = True
+    options.update(features=features, features_model=features_model and str(features_model),
+                   neighbours=neighbours, min_doubt=min_doubt, max_oddness=max_oddness)
     meta = {**where, "seed": seed,
-            "stages": {"prepare": {"options": options, "scan": scan_facts}}}
+            "stages": {"prepare": {"options": options, "scan": scan_facts, "features": feature_facts,
+                                   "vet": m.attrs.get("vet", {})}}}
     manifest.write(m, target, meta=meta, force=True)
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
                      meta=manifest.read_sidecar(target), force=force)
     return m, summary
 
+
+
+def _group_and_vet(m, root, manifest_path, *, features, features_model, jobs, cluster, progress,
+                   max_distance, keep_conflicts, flips, neighbours, min_doubt, max_oddness, seed):
+    """group then vet, with the learned features (computed once, cached beside the manifest)
+    when they are asked or installed: the same-scene links join the clusters, and the votes run
+    on the embeddings instead of the sketches. Returns the manifest and the features' facts."""
+    from .clusters import group
+    from .embedding import cache_path, features_for
+    from .labelcheck import vet
+
+    vectors, facts = features_for(m, root, features=features, model=features_model, jobs=jobs,
+                                  cluster=cluster, cache=cache_path(manifest_path), progress=progress)
+    links = None
+    if vectors is not None:
+        from .scenes import scene_links
+
+        links = scene_links(m, root, vectors, flips=flips, jobs=jobs, cluster=cluster, seed=seed,
+                            progress=progress)
+    m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips,
+              progress=progress, cluster=cluster, scene_links=links)
+    m = vet(m, features=vectors, neighbours=neighbours, min_doubt=min_doubt, max_oddness=max_oddness,
+            seed=seed)
+    return m, facts

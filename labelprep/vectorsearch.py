@@ -23,6 +23,7 @@ PROBES = 6
 _BLOCK_ENTRIES = 1 << 23  # similarities held at once by a query block (32 MiB of float32)
 _SAMPLE = 40_000  # rows the centroids are fitted on
 _KMEANS_ROUNDS = 8
+PCA_SAMPLE = 20_000  # rows the principal components are fitted on
 
 
 def top_k(vectors, k, *, blocked=None, seed=0, exact=None):
@@ -123,3 +124,27 @@ def _cells(vectors, seed):
     for start in range(0, n, step):
         cells[start:start + step] = np.argmax(vectors[start:start + step] @ centroids.T, axis=1)
     return cells, centroids
+
+
+def pca_units(x, dim, seed):
+    """PCA to ``dim`` components fitted on a seeded sample of rows, then unit length; and the
+    share of each centred row's energy outside the components."""
+    rng = np.random.default_rng(seed)
+    sample = x if len(x) <= PCA_SAMPLE else x[np.sort(rng.choice(len(x), PCA_SAMPLE, replace=False))]
+    mean = sample.mean(axis=0, dtype=np.float64)
+    centred = sample - mean
+    # eigenvectors of the covariance: cheaper than an SVD of the sample when rows outnumber columns
+    values, vectors = np.linalg.eigh(centred.T @ centred)
+    vt = vectors[:, np.argsort(-values, kind="stable")[:dim]].T
+    # a component's sign is arbitrary: fix it so that the result is the same on any machine
+    basis = vt * np.sign(vt[:, :1] + (vt[:, :1] == 0))
+    z = np.empty((len(x), len(basis)), dtype=np.float32)
+    residual = np.empty(len(x))
+    step = max(1, _BLOCK_ENTRIES // max(x.shape[1], 1))
+    for start in range(0, len(x), step):  # in blocks: a million centred rows would double memory
+        centred = x[start:start + step] - mean.astype(np.float32)
+        part = centred @ basis.T.astype(np.float32)
+        kept = (part ** 2).sum(axis=1)
+        residual[start:start + step] = np.clip(1 - kept / np.maximum((centred ** 2).sum(axis=1), 1e-12), 0, 1)
+        z[start:start + step] = part / np.maximum(np.sqrt(kept), 1e-12)[:, None]
+    return z, residual

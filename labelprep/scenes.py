@@ -1,0 +1,197 @@
+"""Same-scene copies: heavier edits than hashes survive, proposed by embeddings, decided by geometry.
+
+Learned features propose: each file's :data:`CANDIDATES` nearest neighbours by cosine similarity
+of its embedding (PCA-reduced, :func:`labelprep.vectorsearch.top_k`) with a similarity of at
+least :data:`MIN_SIMILARITY`. Similarity alone cannot decide (a 50% crop can score as low as two
+different textures, two people's faces as high as a copy), so keypoints do: ORB keypoints of both
+files (OpenCV, on a grayscale decode with the longer side at :data:`SIDE`), matched one to one
+(cross-checked nearest Hamming neighbours), and a RANSAC fit of one affine transform; the pair is
+a copy when at least :data:`MIN_INLIERS` matches agree with it. With ``flips`` the mirror image of
+one file is matched too. Needs opencv-python-headless (the ``features`` extra).
+
+:func:`scene_links` returns the verified links with their evidence; :func:`merge` is the hook
+through which :func:`labelprep.group` joins them to the near-duplicate clusters and writes the
+``same-scene`` code and the ``scene_similarity``/``scene_inliers`` columns.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+from .errors import InputError
+
+CANDIDATES = 5
+MIN_SIMILARITY = 0.5
+"""Lowest embedding similarity sent to the keypoint check (benchmarks/hard_copies.py: every
+true pair of the hard edits scored above it)."""
+MIN_INLIERS = 15
+"""Distinct photographs keep at most 7 RANSAC inliers, true copies score 20 and more (issue 14's
+measurement, checked again by benchmarks/hard_copies.py)."""
+SIDE = 512
+_KEYPOINTS = 1000
+_REPROJECTION = 0.02  # RANSAC tolerance, as a share of SIDE
+
+
+class Links(NamedTuple):
+    """Verified same-scene pairs: ``pairs`` (2, k) row positions, their ``similarity`` and ``inliers``."""
+
+    pairs: object
+    similarity: object
+    inliers: object
+
+
+def require():
+    try:
+        import cv2  # noqa: F401
+    except ImportError as exc:
+        raise InputError("same-scene copies need the features extra: pip install 'labelprep[features]'") from exc
+
+
+def scene_links(manifest, root, features, *, flips=False, jobs=None, cluster=None, seed=0, progress=None):
+    """Same-scene pairs among the rows of ``manifest``, verified by keypoint geometry.
+
+    Parameters
+    ----------
+    manifest : pandas.DataFrame
+        Needs ``path``.
+    root : path or dict
+        What the paths are relative to.
+    features : ndarray, shape (len(manifest), d)
+        Embeddings (NaN rows are skipped), as :func:`labelprep.embedding.embed` returns.
+    flips : bool
+        Also match each candidate against the mirror image of the other.
+    jobs, cluster, progress
+        As in :func:`labelprep.scan`: the keypoints are computed on the scan's pool.
+    seed : int
+
+    Returns
+    -------
+    Links
+        Positions are row positions of ``manifest`` (0..n-1), ``pairs[0] < pairs[1]``.
+    """
+    import numpy as np
+
+    from .embedding import _plain_root
+    from .parallel import map_ordered
+    from .progress import resolve
+    from .vectorsearch import pca_units, top_k
+
+    require()
+    features = np.asarray(features, dtype=np.float32)
+    empty = Links(np.zeros((2, 0), dtype=np.int64), np.zeros(0), np.zeros(0, dtype=np.int64))
+    at = np.flatnonzero(np.isfinite(features).all(axis=1)) if features.size else np.zeros(0, dtype=np.int64)
+    if len(at) < 2:
+        return empty
+    x = features[at] / np.maximum(np.linalg.norm(features[at], axis=1, keepdims=True), 1e-12)
+    vectors = x if len(at) <= 20_000 else pca_units(x, 64, seed)[0]
+    index, sims = top_k(vectors, CANDIDATES, seed=seed)
+    left = np.repeat(np.arange(len(at)), CANDIDATES)
+    right = index.ravel()
+    keep = (right >= 0) & (sims.ravel() >= MIN_SIMILARITY)
+    pairs = np.sort(np.vstack([at[left[keep]], at[right[keep]]]), axis=0)
+    if not pairs.size:
+        return empty
+    pairs = np.unique(pairs, axis=1)
+    involved = np.unique(pairs)
+    paths = manifest["path"].to_numpy(dtype=object)
+    show = resolve(progress)
+    found = map_ordered(_keypoints, [paths[i] for i in involved], jobs=jobs, chunksize=8,
+                        cluster=cluster, shared=(_plain_root(root), bool(flips)))
+    points = dict(zip(involved.tolist(), show(found, total=len(involved), label="keypoints")))
+    inliers = np.array([_inliers(points[a], points[b]) for a, b in pairs.T], dtype=np.int64)
+    ok = inliers >= MIN_INLIERS
+    # the similarity shown is the unreduced cosine, the one a user can recompute
+    cosine = np.einsum("ij,ij->i", *(features[p] / np.linalg.norm(features[p], axis=1, keepdims=True)
+                                     for p in pairs[:, ok]))
+    return Links(pairs[:, ok], np.round(cosine, 4), inliers[ok])
+
+
+def _keypoints(rel, shared):
+    """ORB keypoints of one file: ``[(xy, descriptors)]``, and the mirror image's when asked."""
+    import io
+
+    import cv2
+    import numpy as np
+    from PIL import Image, ImageOps
+
+    from .probe import register_plugins
+    from .sources import read_bytes
+
+    root, flips = shared
+    register_plugins()
+    try:
+        with Image.open(io.BytesIO(read_bytes(root, rel))) as im:
+            im.draft("L", (SIDE, SIDE))
+            gray = ImageOps.exif_transpose(im).convert("L")
+            gray.thumbnail((SIDE, SIDE))
+            pixels = np.asarray(gray)
+    except Exception:  # noqa: BLE001 - the scan reported the file; it simply has no keypoints
+        return []
+    orb = cv2.ORB_create(nfeatures=_KEYPOINTS, fastThreshold=7)
+    views = [pixels, pixels[:, ::-1].copy()] if flips else [pixels]
+    out = []
+    for view in views:
+        keys, descriptors = orb.detectAndCompute(view, None)
+        xy = np.array([k.pt for k in keys], dtype=np.float32).reshape(-1, 2)
+        out.append((xy, descriptors))
+    return out
+
+
+def _inliers(first, second):
+    """Most matches of the two files' keypoints that agree with one affine transform."""
+    import cv2
+
+    if not first or not second:
+        return 0
+    matcher = cv2.BFMatcher(cv2.NORM_HAMMING, crossCheck=True)  # one-to-one matches
+    best = 0
+    xy_a, desc_a = first[0]
+    for xy_b, desc_b in second:
+        if desc_a is None or desc_b is None or len(desc_a) < 3 or len(desc_b) < 3:
+            continue
+        matches = matcher.match(desc_a, desc_b)
+        if len(matches) < MIN_INLIERS:
+            continue
+        src = xy_a[[m.queryIdx for m in matches]]
+        dst = xy_b[[m.trainIdx for m in matches]]
+        _, mask = cv2.estimateAffine2D(src, dst, method=cv2.RANSAC,
+                                       ransacReprojThreshold=_REPROJECTION * SIDE,
+                                       maxIters=2000, confidence=0.995, refineIters=0)
+        if mask is not None:
+            best = max(best, int(mask.sum()))
+    return best
+
+
+def merge(links, order, hash_cluster):
+    """The hook :func:`labelprep.group` calls: ``links`` in its path-sorted row positions.
+
+    Parameters
+    ----------
+    links : Links
+        As :func:`scene_links` returns, in the caller's input row positions.
+    order : ndarray
+        ``order[k]`` is the input position of the k-th row in path order.
+    hash_cluster : ndarray
+        Component of each path-ordered row from exact and hash links.
+
+    Returns
+    -------
+    (ndarray, ndarray, ndarray, ndarray)
+        The links (2, m) in path order, a mask of rows joined by a link that hashes did not make
+        (``same-scene``), and per row the similarity and inliers of its strongest such link (NaN
+        and -1 elsewhere).
+    """
+    import numpy as np
+
+    n = len(order)
+    position = np.empty(n, dtype=np.int64)
+    position[order] = np.arange(n)
+    pairs = position[np.asarray(links.pairs, dtype=np.int64)] if len(links.inliers) else np.zeros((2, 0), np.int64)
+    new = hash_cluster[pairs[0]] != hash_cluster[pairs[1]] if pairs.size else np.zeros(0, dtype=bool)
+    similarity = np.full(n, np.nan)
+    inliers = np.full(n, -1, dtype=np.int64)
+    for (a, b), sim, count in zip(pairs[:, new].T, np.asarray(links.similarity)[new], np.asarray(links.inliers)[new]):
+        for row in (a, b):
+            if count > inliers[row]:
+                inliers[row], similarity[row] = count, sim
+    return pairs, inliers >= 0, similarity, inliers
