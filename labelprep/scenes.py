@@ -7,7 +7,9 @@ different textures, two people's faces as high as a copy), so keypoints do: ORB 
 files (OpenCV, on a grayscale decode with the longer side at :data:`SIDE`), matched one to one
 (mutual nearest Hamming neighbours that also pass Lowe's ratio test, Lowe, IJCV 2004), and a
 RANSAC fit of one affine transform within :data:`TOLERANCE` pixels; the pair is a copy when at
-least :data:`MIN_INLIERS` matches agree with it. With ``flips`` the mirror image of
+least :data:`MIN_INLIERS` matches agree with it and they cover :data:`MIN_COVER` of both files'
+keypoint area (their convex hulls), or when :data:`SURE_INLIERS` agree: drawn shapes repeated
+across different pictures (the demo's starfish) match in one small region only. With ``flips`` the mirror image of
 one file is matched too. Needs opencv-python-headless (the ``features`` extra).
 
 :func:`scene_links` returns the verified links with their evidence; :func:`merge` is the hook
@@ -29,6 +31,10 @@ MIN_INLIERS = 10
 """Measured by benchmarks/hard_copies.py: distinct tiles of one texture (brick, gravel, flowers)
 keep at most 9 inliers under these matching rules, while 72% of the true candidate pairs reach
 10 (a cross-check alone and a 10-pixel tolerance let textures reach 33)."""
+MIN_COVER = 0.125
+"""On the demo's generated pools, different pictures of one drawn shape agree on at most 19
+inliers covering at most 12% of the keypoint area; 90% of the true hard-copy pairs cover more."""
+SURE_INLIERS = 25
 TOLERANCE = 3.0
 RATIO = 0.8  # Lowe's ratio test (Lowe, IJCV 2004, uses 0.8)
 SIDE = 512
@@ -101,8 +107,9 @@ def scene_links(manifest, root, features, *, flips=False, jobs=None, cluster=Non
     found = map_ordered(_keypoints, [paths[i] for i in involved], jobs=jobs, chunksize=8,
                         cluster=cluster, shared=(_plain_root(root), bool(flips)))
     points = dict(zip(involved.tolist(), show(found, total=len(involved), label="keypoints")))
-    inliers = np.array([_inliers(points[a], points[b]) for a, b in pairs.T], dtype=np.int64)
-    ok = inliers >= MIN_INLIERS
+    checked = np.array([_inliers(points[a], points[b]) for a, b in pairs.T], dtype=float).reshape(-1, 2)
+    inliers, cover = checked[:, 0].astype(np.int64), checked[:, 1]
+    ok = (inliers >= SURE_INLIERS) | ((inliers >= MIN_INLIERS) & (cover >= MIN_COVER))
     # the similarity shown is the unreduced cosine, the one a user can recompute
     cosine = np.einsum("ij,ij->i", *(features[p] / np.linalg.norm(features[p], axis=1, keepdims=True)
                                      for p in pairs[:, ok]))
@@ -141,13 +148,14 @@ def _keypoints(rel, shared):
 
 
 def _inliers(first, second):
-    """Most matches of the two files' keypoints that agree with one affine transform."""
+    """``(inliers, cover)``: most matches of the two files' keypoints that agree with one affine
+    transform, and the smaller share of either file's keypoint hull that those inliers span."""
     import cv2
 
     if not first or not second:
-        return 0
+        return 0, 0.0
     matcher = cv2.BFMatcher(cv2.NORM_HAMMING)
-    best = 0
+    best = (0, 0.0)
     xy_a, desc_a = first[0]
     for xy_b, desc_b in second:
         if desc_a is None or desc_b is None or len(desc_a) < 3 or len(desc_b) < 3:
@@ -164,9 +172,17 @@ def _inliers(first, second):
         dst = xy_b[[m.trainIdx for m in good]]
         _, mask = cv2.estimateAffine2D(src, dst, method=cv2.RANSAC, ransacReprojThreshold=TOLERANCE,
                                        maxIters=2000, confidence=0.995, refineIters=0)
-        if mask is not None:
-            best = max(best, int(mask.sum()))
+        if mask is not None and int(mask.sum()) > best[0]:
+            kept = mask.ravel().astype(bool)
+            best = (int(kept.sum()), min(_hull_share(src[kept], xy_a), _hull_share(dst[kept], xy_b)))
     return best
+
+
+def _hull_share(points, everything):
+    import cv2
+
+    whole = cv2.contourArea(cv2.convexHull(everything))
+    return cv2.contourArea(cv2.convexHull(points)) / whole if whole > 0 and len(points) >= 3 else 0.0
 
 
 def merge(links, order, hash_cluster):
