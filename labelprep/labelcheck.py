@@ -1,14 +1,17 @@
 """The vet stage: files whose label their features contradict, and files far from every class.
 
-Each usable labelled row is described by a unit vector: the learned embedding when one is given
-(:mod:`labelprep.embedding`), else the model-free ``sketch`` (the 32x32 grayscale thumbnail of
-the scan, each standardised to zero mean and unit variance, which is enough for digits, letters
-and icons). Both are reduced by PCA fitted on a seeded sample (:data:`DIMENSIONS`), which keeps
+Each labelled row is described by a unit vector: the model-free ``sketch`` (the scan's 32x32
+grayscale thumbnail, described by its histograms of gradient orientation, which suit digits,
+letters and icons) or the learned embedding (:mod:`labelprep.embedding`, which suits
+photographs). With both, each is tried and the one whose neighbours agree more often with the
+given labels is used (on the label-noise benchmark the sketch wins on digits and letters, the
+embedding on photographs). Both are reduced by PCA fitted on a seeded sample (:data:`DIMENSIONS`), which keeps
 the search cheap at a million rows and drops the directions that only carry noise.
 
 Its ``neighbours`` most similar rows (:func:`labelprep.vectorsearch.top_k`) vote, out of fold:
-the row itself and the members of its own near-duplicate cluster never vote, so a copy cannot
-vouch for its original. A vote weighs its cosine similarity to the fourth power, so that the
+the row itself and its byte-identical copies never vote, so a copy cannot vouch for its
+original. (Near-duplicate clusters are not used for that: hash clusters chain, and on letters
+across typefaces one cluster held 1,813 of 1,976 files, which would have silenced every vote.) A vote weighs its cosine similarity to the fourth power, so that the
 closest neighbours dominate. ``label_doubt`` is the largest share of the votes held by another
 label; at ``min_doubt`` or more the row gets that label in ``likely_label`` and the warning
 ``suspect-label``. ``oddness`` is the share of the row's (standardised) vector that the PCA
@@ -31,9 +34,11 @@ from .vectorsearch import pca_units, top_k
 # scikit-learn's digits with 4% planted wrong labels gives precision 0.93 at recall 0.94 from the
 # sketch (0.5 gives 0.78 at 1.0); MAX_ODDNESS 5.0 sits between the 1,797 digits (at most 4.3) and
 # ten of scikit-image's photos planted among them (5.7-16.5).
-DIMENSIONS = {"sketch": 32, "embedding": 64}
+DIMENSIONS = {"sketch": 64, "embedding": 64}
 _POWER = 4
 _SKETCH_BLOCK = 65_536  # sketches decoded at once (a million would take 4 GB as float32)
+_CELL, _BINS = 4, 9
+_RESIDUAL_DIMENSIONS = 32  # components of the sketch pixels that oddness is measured against
 _STAGE = "vet"
 
 
@@ -44,10 +49,12 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
     Parameters
     ----------
     manifest : pandas.DataFrame
-        Needs ``path`` and ``label``; ``sketch`` unless ``features`` is given; uses ``issues``
-        (rows with an error code are left out) and ``dup_group`` (copies do not vote).
+        Needs ``path`` and ``label``; ``sketch`` unless ``features`` is given; uses
+        ``sha256`` (exact copies do not vote). Every labelled row with features is vetted.
     features : ndarray, shape (len(manifest), d), optional
-        One embedding per row (rows of NaN where none); default the model-free sketch.
+        One embedding per row (rows of NaN where none). With both these and ``sketch``, the
+        kind whose neighbours agree more often with the labels (``attrs["vet"]["agreement"]``)
+        is used; without them, the model-free sketch.
     neighbours : int, default 10
         Rows that vote on each row's label.
     min_doubt : float in (0, 1], default 0.8
@@ -100,12 +107,16 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
     n = len(rows)
     labels = rows["label"].to_numpy(dtype=object)
     issues = rows["issues"] if "issues" in rows.columns else pd.Series([""] * n, dtype=object)
-    usable = ~codes.errors_mask(issues).to_numpy() & (labels != "")
-    if features is None:
-        usable &= rows["sketch"].to_numpy(dtype=object) != ""
-    else:
+    # every labelled file with features is vetted, error or not: a label-conflict cluster is
+    # exactly where a wrong label hides, and its members still tell their neighbours' labels
+    usable = labels != ""
+    kinds = []
+    if features is not None:
         usable &= np.isfinite(features).all(axis=1)
-    kind = "sketch" if features is None else "embedding"
+        kinds.append("embedding")
+    if "sketch" in rows.columns:
+        usable &= rows["sketch"].to_numpy(dtype=object) != ""
+        kinds.append("sketch")
     at = np.flatnonzero(usable)
     out = rows.copy()
     likely = np.full(n, "", dtype=object)
@@ -113,14 +124,24 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
     oddness = np.full(n, np.nan)
     peer_same = np.full(n, "", dtype=object)
     peer_other = np.full(n, "", dtype=object)
+    kind, agreement = kinds[0], {}
     if len(at) > neighbours:
-        vectors, residual = unit_vectors(rows, at, features, seed)
-        blocked = None
-        if "dup_group" in rows.columns:
-            blocked = rows["dup_group"].astype("Int64").fillna(-1).to_numpy(dtype=np.int64)[at]
-        index, sims = top_k(vectors, int(neighbours), blocked=blocked, seed=seed)
         names, code = np.unique(labels[at], return_inverse=True)
-        share, nearest = _votes(index, sims, code, len(names))
+        blocked = None
+        if "sha256" in rows.columns:
+            blocked = pd.factorize(rows["sha256"].to_numpy(dtype=object)[at])[0]
+        # with both kinds at hand, the one whose neighbours agree more with the labels decides:
+        # a CNN's features suit photographs, the thumbnails suit digits and letters
+        best_agreement = -1.0
+        for candidate in kinds:
+            vectors, residual_of = unit_vectors(rows, at, features if candidate == "embedding" else None, seed)
+            found_index, found_sims = top_k(vectors, int(neighbours), blocked=blocked, seed=seed)
+            found_share, found_nearest = _votes(found_index, found_sims, code, len(names))
+            agreement[candidate] = round(float((np.argmax(found_share, axis=1) == code).mean()), 4)
+            if agreement[candidate] > best_agreement:
+                best_agreement, kind = agreement[candidate], candidate
+                index, sims, share, nearest, residual = (found_index, found_sims, found_share,
+                                                         found_nearest, residual_of)
         own = code
         others = share.copy()
         others[np.arange(len(at)), own] = -1.0
@@ -144,7 +165,7 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
     found = {"suspect-label": likely != "", "lone-image": np.nan_to_num(oddness) >= max_oddness}
     out["issues"] = codes.replace_stage_codes(issues.astype(str), _STAGE, found)
     out = coerce(out)
-    out.attrs["vet"] = {"features": kind, "neighbours": int(neighbours), "min_doubt": float(min_doubt),
+    out.attrs["vet"] = {"features": kind, "agreement": agreement, "neighbours": int(neighbours), "min_doubt": float(min_doubt),
                         "max_oddness": float(max_oddness), "seed": seed,
                         "vetted": int(len(at)), "suspect": int(found["suspect-label"].sum()),
                         "lone": int(found["lone-image"].sum())}
@@ -152,27 +173,62 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
 
 
 def unit_vectors(rows, at, features, seed):
-    """Unit rows (float32) for the rows ``at`` (standardised sketches or embeddings, PCA-reduced)
-    and the share of each row the PCA leaves unexplained."""
+    """Unit rows (float32) for the rows ``at`` (orientation histograms of the sketches, or the
+    embeddings, PCA-reduced) and the share of each row the PCA leaves unexplained (for the
+    sketch: of its standardised 16x16 pixels, which keep what a histogram of edges discards)."""
     import numpy as np
 
     from .hashing import sketch_pixels
 
-    if features is None:
-        cells = rows["sketch"].to_numpy(dtype=object)[at]
-        x = np.empty((len(at), 256), dtype=np.float32)
-        for start in range(0, len(at), _SKETCH_BLOCK):
-            raw = sketch_pixels(cells[start:start + _SKETCH_BLOCK]).astype(np.float32)
-            # 2x2 means: 256 values per image keep a digit's or a letter's shape at a quarter the cost
-            x[start:start + len(raw)] = raw.reshape(len(raw), 16, 2, 16, 2).mean(axis=(2, 4)).reshape(len(raw), -1)
-        x -= x.mean(axis=1, keepdims=True)
-        x /= np.maximum(x.std(axis=1, keepdims=True), 1e-3)
-        dim = DIMENSIONS["sketch"]
-    else:
+    if features is not None:
         x = features[at].astype(np.float32)
         x /= np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
-        dim = DIMENSIONS["embedding"]
-    return pca_units(x, dim, seed)
+        return pca_units(x, DIMENSIONS["embedding"], seed)
+    cells = rows["sketch"].to_numpy(dtype=object)[at]
+    edges = np.empty((len(at), (32 // _CELL) ** 2 * _BINS), dtype=np.float32)
+    pixels = np.empty((len(at), 256), dtype=np.float32)
+    for start in range(0, len(at), _SKETCH_BLOCK):
+        raw = sketch_pixels(cells[start:start + _SKETCH_BLOCK])
+        edges[start:start + len(raw)] = orientation_histograms(raw)
+        pixels[start:start + len(raw)] = raw.reshape(len(raw), 16, 2, 16, 2).mean(axis=(2, 4)).reshape(len(raw), -1)
+    pixels -= pixels.mean(axis=1, keepdims=True)
+    pixels /= np.maximum(pixels.std(axis=1, keepdims=True), 1e-3)
+    return pca_units(edges, DIMENSIONS["sketch"], seed)[0], pca_units(pixels, _RESIDUAL_DIMENSIONS, seed)[1]
+
+
+def orientation_histograms(pixels):
+    """Histograms of gradient orientation (Dalal & Triggs, CVPR 2005) of (n, 32, 32) thumbnails.
+
+    Per 4x4-pixel cell, the gradient magnitudes are binned by unsigned orientation into 9 bins
+    (each gradient split between its two nearest bins), and each cell's histogram is scaled to
+    unit length, so the result ignores brightness and contrast and tolerates small shifts. On
+    the label-noise benchmark they beat the raw pixels: letters across 38 typefaces agree with
+    their neighbours' labels 89% of the time against 82%.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> ramp = np.tile(np.arange(32, dtype=np.uint8) * 8, (1, 32, 1))   # brightness grows to the right
+    >>> h = orientation_histograms(ramp).reshape(64, 9)
+    >>> int(h[0].argmax())   # every gradient is horizontal: orientation bin 0
+    0
+    """
+    import numpy as np
+
+    x = np.asarray(pixels, dtype=np.float32)
+    gy, gx = np.gradient(x, axis=(1, 2))
+    magnitude = np.hypot(gx, gy)
+    position = (np.arctan2(gy, gx) % np.pi) * (_BINS / np.pi)
+    low = np.floor(position)
+    upper_share = position - low
+    low = low.astype(np.int64) % _BINS
+    n, side = len(x), x.shape[1] // _CELL
+    out = np.zeros((n, side, side, _BINS), dtype=np.float32)
+    for b in range(_BINS):
+        weight = magnitude * np.where(low == b, 1 - upper_share, 0) + magnitude * np.where((low + 1) % _BINS == b, upper_share, 0)
+        out[..., b] = weight.reshape(n, side, _CELL, side, _CELL).sum(axis=(2, 4))
+    out /= np.linalg.norm(out, axis=3, keepdims=True) + 1e-3
+    return out.reshape(n, -1)
 
 
 def _votes(index, sims, code, classes):
