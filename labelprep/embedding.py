@@ -265,13 +265,15 @@ class Embedder:
     ----------
     model : path, optional
         A user's ONNX model; default the converted EfficientNet-Lite0.
+    cache : path, optional
+        Folder of the converted model (default :func:`cache_dir`).
     """
 
-    def __init__(self, model=None):
+    def __init__(self, model=None, *, cache=None):
         require()
         import onnxruntime as ort
 
-        path = default_model() if model is None else Path(model)
+        path = default_model(cache) if model is None else Path(model)
         options = ort.SessionOptions()
         # one thread per session: the scan's pool already runs one worker per core
         options.intra_op_num_threads = 1

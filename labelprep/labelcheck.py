@@ -16,7 +16,7 @@ closest neighbours dominate. ``label_doubt`` is the largest share of the votes h
 label; at ``min_doubt`` or more the row gets that label in ``likely_label`` and the warning
 ``suspect-label``. ``oddness`` is the share of the row's (standardised) vector that the PCA
 components leave unexplained, over the median of that share in the data set: a file unlike the
-rest (a photo among digits scores 5.7-16, the digits at most 4.3) cannot be rebuilt from the
+rest (a photo among digits scores 6.5-28, the digits at most 4.9) cannot be rebuilt from the
 directions the data set varies along; at ``max_oddness`` or more the row is ``lone-image``.
 ``peer_same``/``peer_other`` name, for flagged rows, the nearest neighbour with the row's own
 label and the nearest with another (the likely one when there is one): the report shows them
@@ -32,11 +32,11 @@ from .vectorsearch import pca_units, top_k
 
 # The defaults (labelprep.defaults) were measured by benchmarks/label_noise.py: MIN_DOUBT 0.8 on
 # scikit-learn's digits with 4% planted wrong labels gives precision 0.93 at recall 0.94 from the
-# sketch (0.5 gives 0.78 at 1.0); MAX_ODDNESS 5.0 sits between the 1,797 digits (at most 4.3) and
-# ten of scikit-image's photos planted among them (5.7-16.5).
+# sketch (0.5 gives 0.78 at 1.0); MAX_ODDNESS 6.0 sits between the 1,797 digits (at most 4.9
+# upsampled bilinearly, 4.3 nearest) and ten of scikit-image's photos planted among them (6.5-28).
 DIMENSIONS = {"sketch": 64, "embedding": 64}
 _POWER = 4
-_SKETCH_BLOCK = 65_536  # sketches decoded at once (a million would take 4 GB as float32)
+_SKETCH_BLOCK = 8192  # sketches described at once (a million at once would take many GB)
 _CELL, _BINS = 4, 9
 _RESIDUAL_DIMENSIONS = 32  # components of the sketch pixels that oddness is measured against
 _STAGE = "vet"
@@ -59,7 +59,7 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
         Rows that vote on each row's label.
     min_doubt : float in (0, 1], default 0.8
         Share of the votes another label needs to be named in ``likely_label``.
-    max_oddness : float > 1, default 5.0
+    max_oddness : float > 1, default 6.0
         ``oddness`` from which a file is flagged ``lone-image``.
     seed : int
         Seeds the PCA sample and the cell search, so the result is reproducible.
@@ -136,13 +136,13 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
         for candidate in kinds:
             vectors, residual_of = unit_vectors(rows, at, features if candidate == "embedding" else None, seed)
             found_index, found_sims = top_k(vectors, int(neighbours), blocked=blocked, seed=seed)
-            found_share, found_nearest = _votes(found_index, found_sims, code, len(names))
+            found_share = _votes(found_index, found_sims, code, len(names))
             agreement[candidate] = round(float((np.argmax(found_share, axis=1) == code).mean()), 4)
             if agreement[candidate] > best_agreement:
                 best_agreement, kind = agreement[candidate], candidate
-                index, sims, share, nearest, residual = (found_index, found_sims, found_share,
-                                                         found_nearest, residual_of)
-        own = code
+                index, sims, share, residual, chosen = (found_index, found_sims, found_share,
+                                                        residual_of, vectors)
+        own, vectors = code, chosen
         others = share.copy()
         others[np.arange(len(at)), own] = -1.0
         best = np.argmax(others, axis=1)
@@ -152,11 +152,15 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
         oddness[at] = np.round(residual / max(float(np.median(residual)), 1e-6), 4)
         flagged = suspect | (oddness[at] >= max_oddness)
         paths = rows["path"].to_numpy(dtype=object)[at]
-        same_at = nearest[np.arange(len(at)), own]
-        other_at = np.where(suspect, nearest[np.arange(len(at)), best], _nearest_other(index, code))
+        # a wrong label rarely has a neighbour of its own label among the voters: look for the
+        # nearest one among all files of that label (only for the few flagged rows)
+        same_at = _nearest_of_label(vectors, code, np.flatnonzero(flagged), own[flagged])
+        other_label = np.where(others[np.arange(len(at)), best] > 0, best, -1)
+        other_at = _nearest_of_label(vectors, code, np.flatnonzero(flagged), other_label[flagged])
         for target, found in ((peer_same, same_at), (peer_other, other_at)):
-            hit = flagged & (found >= 0)
-            target[at[hit]] = paths[found[hit]]
+            rows_flagged = np.flatnonzero(flagged)
+            hit = found >= 0
+            target[at[rows_flagged[hit]]] = paths[found[hit]]
     out["likely_label"] = pd.Series(likely, index=rows.index, dtype=object)
     out["label_doubt"] = pd.array(doubt, dtype="Float64")
     out["oddness"] = pd.array(oddness, dtype="Float64")
@@ -216,23 +220,26 @@ def orientation_histograms(pixels):
     import numpy as np
 
     x = np.asarray(pixels, dtype=np.float32)
-    gy, gx = np.gradient(x, axis=(1, 2))
-    magnitude = np.hypot(gx, gy)
-    position = (np.arctan2(gy, gx) % np.pi) * (_BINS / np.pi)
-    low = np.floor(position)
-    upper_share = position - low
-    low = low.astype(np.int64) % _BINS
     n, side = len(x), x.shape[1] // _CELL
-    out = np.zeros((n, side, side, _BINS), dtype=np.float32)
-    for b in range(_BINS):
-        weight = magnitude * np.where(low == b, 1 - upper_share, 0) + magnitude * np.where((low + 1) % _BINS == b, upper_share, 0)
-        out[..., b] = weight.reshape(n, side, _CELL, side, _CELL).sum(axis=(2, 4))
-    out /= np.linalg.norm(out, axis=3, keepdims=True) + 1e-3
+    gy, gx = np.gradient(x, axis=(1, 2))
+    magnitude = np.hypot(gx, gy).reshape(n, -1)
+    position = ((np.arctan2(gy, gx) % np.pi) * (_BINS / np.pi)).reshape(n, -1)
+    low = np.floor(position)
+    upper = (position - low) * magnitude
+    low = low.astype(np.int64) % _BINS
+    # each gradient adds to two bins of its cell: one bincount over (image, cell, bin) slots
+    cell = ((np.arange(x.shape[1])[:, None] // _CELL) * side + np.arange(x.shape[2])[None, :] // _CELL).ravel()
+    slot = (np.arange(n)[:, None] * side * side + cell[None, :]) * _BINS
+    total = n * side * side * _BINS
+    out = (np.bincount((slot + low).ravel(), (magnitude - upper).ravel(), minlength=total)
+           + np.bincount((slot + (low + 1) % _BINS).ravel(), upper.ravel(), minlength=total))
+    out = out.astype(np.float32).reshape(n, side * side, _BINS)
+    out /= np.linalg.norm(out, axis=2, keepdims=True) + 1e-3
     return out.reshape(n, -1)
 
 
 def _votes(index, sims, code, classes):
-    """Weighted vote shares (rows, classes) and, per class, the nearest voter of that class."""
+    """Similarity-weighted vote shares (rows, classes) of each row's neighbours."""
     import numpy as np
 
     n, k = index.shape
@@ -240,21 +247,26 @@ def _votes(index, sims, code, classes):
     weight = np.where(valid, np.clip(np.nan_to_num(sims, neginf=0.0), 0, None) ** _POWER, 0.0)
     voter = np.where(valid, code[np.where(valid, index, 0)], -1)
     share = np.zeros((n, classes))
-    nearest = np.full((n, classes), -1, dtype=np.int64)
-    rows = np.arange(n)
-    for j in range(k - 1, -1, -1):  # the last write per class is its nearest voter
-        ok = voter[:, j] >= 0
-        np.add.at(share, (rows[ok], voter[ok, j]), weight[ok, j])
-        nearest[rows[ok], voter[ok, j]] = index[ok, j]
+    rows = np.repeat(np.arange(n), k)
+    ok = voter.ravel() >= 0
+    np.add.at(share, (rows[ok], voter.ravel()[ok]), weight.ravel()[ok])
     total = share.sum(axis=1, keepdims=True)
-    return share / np.where(total > 0, total, 1.0), nearest
+    return share / np.where(total > 0, total, 1.0)
 
 
-def _nearest_other(index, code):
-    """Per row, the nearest neighbour whose label differs from the row's; -1 when none."""
+def _nearest_of_label(vectors, code, queries, wanted):
+    """For each query row, the most similar other row whose label code is ``wanted``; -1 if none."""
     import numpy as np
 
-    valid = index >= 0
-    differs = valid & (code[np.where(valid, index, 0)] != code[:, None])
-    first = np.argmax(differs, axis=1)
-    return np.where(differs.any(axis=1), index[np.arange(len(index)), first], -1)
+    found = np.full(len(queries), -1, dtype=np.int64)
+    for label in np.unique(wanted):
+        mine = np.flatnonzero(wanted == label)
+        candidates = np.flatnonzero(code == label)
+        for start in range(0, len(mine), 256):
+            block = mine[start:start + 256]
+            sims = vectors[queries[block]] @ vectors[candidates].T
+            sims[queries[block][:, None] == candidates[None, :]] = -np.inf
+            best = np.argmax(sims, axis=1)
+            ok = np.isfinite(sims[np.arange(len(block)), best])
+            found[block[ok]] = candidates[best[ok]]
+    return found

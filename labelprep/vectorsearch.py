@@ -133,11 +133,15 @@ def pca_units(x, dim, seed):
     sample = x if len(x) <= PCA_SAMPLE else x[np.sort(rng.choice(len(x), PCA_SAMPLE, replace=False))]
     mean = sample.mean(axis=0, dtype=np.float64)
     centred = sample - mean
-    # eigenvectors of the covariance: cheaper than an SVD of the sample when rows outnumber columns
-    values, vectors = np.linalg.eigh(centred.T @ centred)
-    vt = vectors[:, np.argsort(-values, kind="stable")[:dim]].T
+    from threadpoolctl import threadpool_limits
+
+    # LAPACK's symmetric eigensolver on one thread: on two busy cores its threads slow it 30-fold
+    # (measured here on a 576x576 matrix: 4.9 s against 0.16 s)
+    with threadpool_limits(limits=1, user_api="blas"):
+        values, vectors = np.linalg.eigh(centred.T @ centred)
+    basis = vectors[:, np.argsort(-values, kind="stable")[:dim]].T
     # a component's sign is arbitrary: fix it so that the result is the same on any machine
-    basis = vt * np.sign(vt[:, :1] + (vt[:, :1] == 0))
+    basis = basis * np.sign(basis[:, :1] + (basis[:, :1] == 0))
     z = np.empty((len(x), len(basis)), dtype=np.float32)
     residual = np.empty(len(x))
     step = max(1, _BLOCK_ENTRIES // max(x.shape[1], 1))
@@ -148,3 +152,4 @@ def pca_units(x, dim, seed):
         residual[start:start + step] = np.clip(1 - kept / np.maximum((centred ** 2).sum(axis=1), 1e-12), 0, 1)
         z[start:start + step] = part / np.maximum(np.sqrt(kept), 1e-12)[:, None]
     return z, residual
+
