@@ -149,3 +149,37 @@ class TestValidation:
     def test_not_a_frame(self):
         with pytest.raises(TypeError, match="DataFrame"):
             vet([1, 2])
+
+
+class TestCommand:
+    def test_vet_writes_its_columns_back(self, runner, class_tree, tmp_path):
+        """`labelprep vet` gives what the library function gives, written into the manifest."""
+        from labelprep import manifest, scan
+        from labelprep.cli import main
+
+        path = tmp_path / "m.csv"
+        manifest.write(scan(class_tree, jobs=1), path)
+        result = runner.invoke(main, ["vet", str(path), "--features", "sketch", "--neighbours", "3"])
+        assert result.exit_code == 0, result.output
+        assert "12 files vetted on sketch features" in result.output
+        written = manifest.read(path)
+        expected = vet(scan(class_tree, jobs=1), neighbours=3)
+        assert written["label_doubt"].round(4).tolist() == expected["label_doubt"].round(4).tolist()
+        assert manifest.read_sidecar(path)["stages"]["vet"]["options"]["neighbours"] == 3
+
+    def test_model_features_need_a_root(self, runner, class_tree, tmp_path):
+        from labelprep import manifest, scan
+        from labelprep.cli import main
+
+        path = tmp_path / "elsewhere.csv"
+        manifest.write(scan(class_tree, jobs=1), path)  # a sidecar without the root
+        result = runner.invoke(main, ["vet", str(path), "--features", "model"])
+        assert result.exit_code == 2
+        assert "--root" in result.output
+
+    def test_prepare_help_lists_the_vet_options(self, runner):
+        from labelprep.cli import main
+
+        result = runner.invoke(main, ["prepare", "--help"])
+        for option in ("--features", "--features-model", "--neighbours", "--min-doubt", "--max-oddness"):
+            assert option in result.output
