@@ -37,7 +37,7 @@ from .vectorsearch import pca_units, top_k
 DIMENSIONS = {"sketch": 64, "embedding": 64}
 _POWER = 4
 _SKETCH_BLOCK = 8192  # sketches described at once (a million at once would take many GB)
-_CELL, _BINS = 4, 9
+_CELL, _BINS = 2, 9
 _RESIDUAL_DIMENSIONS = 32  # components of the sketch pixels that oddness is measured against
 _STAGE = "vet"
 
@@ -189,7 +189,7 @@ def unit_vectors(rows, at, features, seed):
         x /= np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
         return pca_units(x, DIMENSIONS["embedding"], seed)
     cells = rows["sketch"].to_numpy(dtype=object)[at]
-    edges = np.empty((len(at), (32 // _CELL) ** 2 * _BINS), dtype=np.float32)
+    edges = np.empty((len(at), (16 // _CELL) ** 2 * _BINS), dtype=np.float32)
     pixels = np.empty((len(at), 256), dtype=np.float32)
     for start in range(0, len(at), _SKETCH_BLOCK):
         raw = sketch_pixels(cells[start:start + _SKETCH_BLOCK])
@@ -203,9 +203,9 @@ def unit_vectors(rows, at, features, seed):
 def orientation_histograms(pixels):
     """Histograms of gradient orientation (Dalal & Triggs, CVPR 2005) of (n, 32, 32) thumbnails.
 
-    Per 4x4-pixel cell, the gradient magnitudes are binned by unsigned orientation into 9 bins
-    (each gradient split between its two nearest bins), and each cell's histogram is scaled to
-    unit length, so the result ignores brightness and contrast and tolerates small shifts. On
+    On the 16x16 means of the thumbnail, per 2x2 cell, the gradient magnitudes are spread over 9 unsigned orientation bins (a
+    soft histogram: each bin takes the magnitude times the cosine of the doubled angle between
+    the gradient and the bin, where positive), and each cell's histogram is scaled to unit length, so the result ignores brightness and contrast and tolerates small shifts. On
     the label-noise benchmark they beat the raw pixels: letters across 38 typefaces agree with
     their neighbours' labels 89% of the time against 82%.
 
@@ -220,21 +220,24 @@ def orientation_histograms(pixels):
     import numpy as np
 
     x = np.asarray(pixels, dtype=np.float32)
-    n, side = len(x), x.shape[1] // _CELL
+    n = len(x)
+    # on the 16x16 means of 2x2 pixels: a quarter of the work, and a digit or a letter keeps its
+    # strokes' directions
+    x = x.reshape(n, x.shape[1] // 2, 2, x.shape[2] // 2, 2).mean(axis=(2, 4))
+    side = x.shape[1] // _CELL
+    pool = np.kron(np.eye(side, dtype=np.float32), np.ones((1, _CELL), dtype=np.float32))
     gy, gx = np.gradient(x, axis=(1, 2))
-    magnitude = np.hypot(gx, gy).reshape(n, -1)
-    position = ((np.arctan2(gy, gx) % np.pi) * (_BINS / np.pi)).reshape(n, -1)
-    low = np.floor(position)
-    upper = (position - low) * magnitude
-    low = low.astype(np.int64) % _BINS
-    # each gradient adds to two bins of its cell: one bincount over (image, cell, bin) slots
-    cell = ((np.arange(x.shape[1])[:, None] // _CELL) * side + np.arange(x.shape[2])[None, :] // _CELL).ravel()
-    slot = (np.arange(n)[:, None] * side * side + cell[None, :]) * _BINS
-    total = n * side * side * _BINS
-    out = (np.bincount((slot + low).ravel(), (magnitude - upper).ravel(), minlength=total)
-           + np.bincount((slot + (low + 1) % _BINS).ravel(), upper.ravel(), minlength=total))
-    out = out.astype(np.float32).reshape(n, side * side, _BINS)
-    out /= np.linalg.norm(out, axis=2, keepdims=True) + 1e-3
+    # a gradient's orientation, doubled so that opposite directions agree (unsigned), as the
+    # unit vector (cos 2t, sin 2t) scaled by the magnitude: no arctan needed
+    magnitude = np.sqrt(gx * gx + gy * gy) + 1e-6
+    cos2, sin2 = (gx * gx - gy * gy) / magnitude, 2 * gx * gy / magnitude
+    out = np.empty((n, side, side, _BINS), dtype=np.float32)
+    for b, angle in enumerate(np.arange(_BINS) * (2 * np.pi / _BINS)):
+        # the share of each gradient given to bin b falls off as the cosine of the angle between
+        # them (doubled), zero beyond a quarter turn: a soft histogram
+        weight = np.maximum(cos2 * np.float32(np.cos(angle)) + sin2 * np.float32(np.sin(angle)), 0)
+        out[..., b] = pool @ weight @ pool.T  # the sum over each cell
+    out /= np.linalg.norm(out, axis=3, keepdims=True) + 1e-3
     return out.reshape(n, -1)
 
 
