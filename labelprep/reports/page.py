@@ -20,6 +20,7 @@ THUMB_SIDE = 120          # CSS pixels of a tile; images are made at twice that 
 FILES_PER_ISSUE = 200     # files listed under each issue code
 CLUSTERS_LISTED = 500     # clusters listed at all
 CLUSTERS_WITH_THUMBS = 60  # of those, the first ones get thumbnails
+DOUBTS_LISTED = 60  # suspect-label and lone-image files shown beside their peers
 MEMBERS_PER_STRIP = 16    # files drawn in one cluster's strip
 SPLIT_COLOURS = {"train": "#2f6690", "val": "#c9822b", "test": "#3a7d44"}
 OTHER_COLOUR = "#7a6f9b"
@@ -50,6 +51,7 @@ def render(m, summary: dict, *, root=None) -> str:
         clusters_listed=CLUSTERS_LISTED, clusters_with_thumbs=CLUSTERS_WITH_THUMBS,
         members_per_strip=MEMBERS_PER_STRIP, thumb_side=THUMB_SIDE,
         has_root=root is not None,
+        doubts=_doubts(m, root), doubts_listed=DOUBTS_LISTED,
         options=[(stage, flatten(value)) for stage, value in summary["options"].items()],
     )
 
@@ -110,6 +112,28 @@ def _clusters(m, root) -> tuple[list, int]:
         out.append({"id": int(gid), "size": int(size), "conflict": bool(conflict), "leak": bool(leak),
                     "files": files})
     return out, len(table)
+
+
+def _doubts(m, root) -> list:
+    """Files the vet stage flagged, most doubtful first, each beside its nearest peer of its own
+    label and of the other (the likely) label, with thumbnails of all three."""
+    if "label_doubt" not in m.columns:
+        return []
+    flagged = m[m["issues"].str.contains("suspect-label|lone-image", regex=True)]
+    flagged = flagged.assign(_d=flagged["label_doubt"].astype(float).fillna(0)).sort_values(
+        ["_d", "path"], ascending=[False, True], kind="stable").head(DOUBTS_LISTED)
+    label_of = dict(zip(m["path"], m["label"]))
+    out = []
+    for row in flagged.itertuples(index=False):
+        peers = [(row.path, row.label, "this file"), (row.peer_same, label_of.get(row.peer_same, ""), "nearest of its label"),
+                 (row.peer_other, label_of.get(row.peer_other, ""), "nearest of another label")]
+        out.append({"path": row.path, "label": row.label, "likely": row.likely_label,
+                    "doubt": row.label_doubt, "oddness": row.oddness,
+                    "lone": "lone-image" in row.issues,
+                    "files": [{"path": p, "label": lbl, "role": role,
+                               "thumb": thumbnail(root, p) if root is not None else None}
+                              for p, lbl, role in peers if p]})
+    return out
 
 
 def hamming(a: str, b: str):
