@@ -136,6 +136,16 @@ SPLIT_OPTIONS = _stack(
 _fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="never",
                         show_default=True,
                         help="Exit with status 1 when any file has an issue of this severity or worse.")
+# the split's own gate: its ratios or class coverage missed (labelprep.split_diagnosis says why)
+SHORTFALL = "shortfall"
+_SHORTFALL_HELP = ("'shortfall' exits with status 1 when the split misses a ratio by more than 2% "
+                   "of the files or leaves a class out of a split; the warning names the cause.")
+_fail_on_split = click.option("--fail-on", type=click.Choice([SHORTFALL, "never"]), default="never",
+                              show_default=True, help=_SHORTFALL_HELP)
+_fail_on_prepare = click.option(
+    "--fail-on", type=click.Choice(["error", "warning", SHORTFALL, "never"]), default="never",
+    show_default=True, help="Exit with status 1 when any file has an issue of this severity or "
+                            "worse. " + _SHORTFALL_HELP)
 
 
 def _progress(quiet: bool):
@@ -289,14 +299,18 @@ def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
+@_fail_on_split
 @_quiet
-def split(manifest_path, ratios, seed, folds, keep_from, quiet):
+def split(manifest_path, ratios, seed, folds, keep_from, fail_on, quiet):
     """Assign train/val/test so that no cluster or group spans two splits.
 
     Two ratios mean train,test. With --folds K the split holds train and test and every train
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
-    path) keep their split and only new files are placed.
+    path) keep their split and only new files are placed. When the bundles (clusters joined
+    with groups) make a ratio or a class unreachable, it says why and which files bridge them.
     """
+    from .reports.split_findings import warning_lines
+    from .split_diagnosis import diagnose_split
     from .splits import split as run, split_summary
 
     old = _read(keep_from) if keep_from is not None else None
@@ -311,9 +325,18 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
     if old is not None:
         _say(quiet, f"kept {summary['kept']} files where they were, placed {summary['placed']} new, "
                     f"moved {summary['moved']}, dropped {summary['dropped']} (now with an error)")
-    for name, labels in summary["missing"].items():
-        _say(quiet, f"warning: {name} has no file of class {', '.join(labels)} "
-                    "(too few groups or clusters to reach every split)", err=True)
+    findings = diagnose_split(m, ratios=ratios, folds=folds)
+    for line in warning_lines(findings):
+        _say(quiet, line, err=True)
+    _gate_split(findings, fail_on)
+
+
+def _gate_split(findings, fail_on: str):
+    from .errors import GateFailed
+
+    if fail_on == SHORTFALL and findings is not None and not findings["reached"]:
+        raise GateFailed(f"--fail-on {SHORTFALL}: the split misses its targets "
+                         f"(cause: {findings['cause']})")
 
 
 @main.command()
@@ -418,7 +441,7 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @GROUP_OPTIONS
 @SPLIT_OPTIONS
 @_cluster
-@_fail_on
+@_fail_on_prepare
 @_force
 @_quiet
 def prepare(roots, out, fail_on, quiet, labels, **options):
@@ -431,7 +454,10 @@ def prepare(roots, out, fail_on, quiet, labels, **options):
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, labels=_labels(labels), progress=_progress(quiet), **options)
     _print_outcome(m, summary, out, quiet)
-    _gate(m, fail_on)
+    if fail_on == SHORTFALL:
+        _gate_split(summary["split_diagnosis"], fail_on)
+    else:
+        _gate(m, fail_on)
 
 
 def _print_outcome(m, summary, out: Path, quiet: bool):

@@ -119,7 +119,7 @@ def diagnose_split(manifest, *, ratios=(0.8, 0.1, 0.1), folds=None, tolerance=SI
     off_ratio = [name for name, s in splits.items() if n and abs(s["deviation"]) > tolerance]
     missing = _missing(placed, list(targets))
     coarse = n > 0 and placed["bundle"].value_counts().iloc[0] > tolerance * n
-    bundles = _largest_bundles(rows, placed) if off_ratio or missing else []
+    bundles = _largest_bundles(rows, placed, tolerance) if off_ratio or missing else []
 
     found = {m["cause"] for m in missing}
     if off_ratio:
@@ -162,13 +162,16 @@ def _kind_cause(kind):
     return {"chain": "chaining", "group": "large-group"}.get(kind, "large-cluster")
 
 
-def _largest_bundles(rows, placed):
-    """The :data:`BUNDLES_LISTED` largest bundles by placed rows, described."""
+def _largest_bundles(rows, placed, tolerance):
+    """The largest bundle and the next ones of more than ``tolerance`` of the placed rows (up to
+    :data:`BUNDLES_LISTED`), described."""
     sizes = placed["bundle"].value_counts()
     # ties in size go to the bundle of the first path, so the listing is deterministic
     first = placed.groupby("bundle")["path"].min()
-    order = sorted(sizes.index, key=lambda b: (-sizes[b], first[b]))[:BUNDLES_LISTED]
     n = len(placed)
+    # the largest always; the next ones only when they are too large as well
+    order = [b for k, b in enumerate(sorted(sizes.index, key=lambda b: (-sizes[b], first[b]))[:BUNDLES_LISTED])
+             if k == 0 or sizes[b] > tolerance * n]
     out = []
     for bundle in order:
         members = rows[rows["bundle"] == bundle]

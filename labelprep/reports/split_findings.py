@@ -29,8 +29,11 @@ _CAUSE_LINE = {
 }
 
 
-def split_lines(found) -> list[str]:
+def split_lines(found, *, bundles: bool = True) -> list[str]:
     """Plain lines telling how the split missed its targets and why; ``[]`` when it reached them.
+
+    ``bundles=False`` leaves out the indented lines describing each bundle and its bridging
+    files (for a view that draws them itself, as the HTML page does).
 
     Examples
     --------
@@ -54,9 +57,14 @@ def split_lines(found) -> list[str]:
             lines.append(_missing_line(entries, why))
     if found["bundles"] and (found["off_ratio"] or found["cause"] in _CAUSE_LINE):
         lines.append(_CAUSE_LINE.get(found["cause"], _CAUSE_LINE["placement"]))
-        for bundle in found["bundles"]:
+        for bundle in found["bundles"] if bundles else []:
             lines += bundle_lines(bundle)
     return lines
+
+
+def warning_lines(found) -> list[str]:
+    """:func:`split_lines` for a terminal: each headline line marked as a warning."""
+    return [line if line.startswith(" ") else f"warning: {line}" for line in split_lines(found)]
 
 
 def _missing_line(entries, why) -> str:
@@ -79,14 +87,14 @@ def bundle_lines(bundle) -> list[str]:
               f"({plural(bundle['links'], 'cluster-group link')})" if bundle["joining_clusters"]
               else f"{parts}, no near-duplicate cluster joining them")
     lines = [f"  bundle {bundle['bundle']}: {plural(bundle['rows'], 'file')} ({_pct(bundle['share'])} "
-             f"of the rows) in {where}, {plural(bundle['classes'], 'class')}; {joined}; apart, the "
-             f"largest of them holds {plural(bundle['largest_part'], 'file')}"]
+             f"of the rows) in {where}, {plural(bundle['classes'], 'class')}; {joined}; without "
+             f"those links its largest part would hold {plural(bundle['largest_part'], 'file')}"]
     if bundle["bridges"]:
         shown = len(bundle["bridges"])
         lines.append(f"    files that bridge it ({shown} of {bundle['bridge_files']}; each is in a "
                      "near-duplicate cluster that spans several groups):")
         lines += [f"      {b['path']}  group {b['group'] or '(none)'}, cluster {b['cluster']} spans "
-                  f"{plural(b['joins'], 'group')} or lone files" + (f", alone ties {plural(b['holds'], 'file')}"
+                  f"{plural(b['joins'], 'group')} or lone files" + (f", alone ties {plural(b['holds'], 'file')} to the rest"
                                                       if b["holds"] else "")
                   for b in bundle["bridges"]]
     return lines
