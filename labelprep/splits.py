@@ -81,7 +81,7 @@ _SIZE_WEIGHT = 1.0
 _POLISH_MAX_UNITS = 2000
 _POLISH_ROUNDS = 200
 _POLISH_MAX_CELLS = 1_000_000  # (units of one split x units of another x classes) per swap grid
-_POLISH_SIZE_SLACK = 0.01
+_POLISH_SIZE_SLACK = 0.005
 # objective changes smaller than this are rounding, not improvement
 _TOL = 1e-12
 # a unit holding kept rows from several old splits follows the first of these (test never loses)
