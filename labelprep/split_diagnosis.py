@@ -138,12 +138,16 @@ def diagnose_split(manifest, *, ratios=(0.8, 0.1, 0.1), folds=None, tolerance=SI
 
 def _missing(placed, names):
     """Classes absent from an active split, with their files, groups, bundles and the cause."""
+    import pandas as pd
+
     need = len(names)
+    label_codes, labels = pd.factorize(placed["label"], sort=True)
+    split_codes = pd.Categorical(placed["split"], categories=names).codes
+    counts = np.zeros((len(labels), need + 1), dtype=np.int64)  # the last column: other names
+    np.add.at(counts, (label_codes, np.where(split_codes >= 0, split_codes, need)), 1)
     out = []
-    for label, rows in placed.groupby("label", sort=True):
-        absent = [name for name in names if not (rows["split"] == name).any()]
-        if not absent:
-            continue
+    for k in np.flatnonzero((counts[:, :need] == 0).any(axis=1)):
+        rows = placed[label_codes == k]
         files, parts, bundles = len(rows), rows["part"].nunique(), rows["bundle"].nunique()
         if files < need:
             cause = "few-files"
@@ -153,8 +157,8 @@ def _missing(placed, names):
             cause = "chaining"
         else:
             cause = "placement"
-        out.append({"label": label, "splits": absent, "files": files, "groups": parts,
-                    "bundles": bundles, "cause": cause})
+        out.append({"label": labels[k], "splits": [n for j, n in enumerate(names) if not counts[k, j]],
+                    "files": files, "groups": parts, "bundles": bundles, "cause": cause})
     return out
 
 
@@ -165,13 +169,12 @@ def _kind_cause(kind):
 def _largest_bundles(rows, placed, tolerance):
     """The largest bundle and the next ones of more than ``tolerance`` of the placed rows (up to
     :data:`BUNDLES_LISTED`), described."""
-    sizes = placed["bundle"].value_counts()
-    # ties in size go to the bundle of the first path, so the listing is deterministic
-    first = placed.groupby("bundle")["path"].min()
     n = len(placed)
+    # rows are in path order, so a tie in size goes to the bundle of the first path
+    ids, first, sizes = np.unique(placed["bundle"].to_numpy(), return_index=True, return_counts=True)
+    top = np.lexsort((first, -sizes))[:BUNDLES_LISTED]
     # the largest always; the next ones only when they are too large as well
-    order = [b for k, b in enumerate(sorted(sizes.index, key=lambda b: (-sizes[b], first[b]))[:BUNDLES_LISTED])
-             if k == 0 or sizes[b] > tolerance * n]
+    order = [ids[k] for i, k in enumerate(top) if i == 0 or sizes[k] > tolerance * n]
     out = []
     for bundle in order:
         members = rows[rows["bundle"] == bundle]
