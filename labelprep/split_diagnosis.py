@@ -38,6 +38,9 @@ BUNDLES_LISTED = 3
 BRIDGES_LISTED = 10
 """Bridging files listed per bundle (the total is given too)."""
 
+BRIDGES_PER_CLUSTER = 3
+"""Of those, at most this many from one cluster, so the list names several clusters."""
+
 CAUSES = ("chaining", "large-group", "large-cluster", "few-groups", "few-files", "placement")
 """The causes, in the order the headline cause is chosen from those found."""
 
@@ -189,7 +192,7 @@ def _largest_bundles(rows, placed, tolerance):
             kind = "group"
         else:
             kind = "cluster"
-        bridges = _bridges(members, joining) if joining.size else []
+        bridges = _bridges(members, joining, tolerance * n) if joining.size else []
         out.append({
             "bundle": int(bundle), "rows": int(len(kept)), "share": len(kept) / n,
             "splits": sorted(set(kept["split"])),
@@ -202,18 +205,31 @@ def _largest_bundles(rows, placed, tolerance):
             "largest_part": int(part_rows.iloc[0]) if part_rows.size else 0,
             "kind": kind,
             "bridge_files": len(bridges),
-            "bridges": bridges[:BRIDGES_LISTED],
+            "bridges": _first_per_cluster(bridges),
         })
     return out
 
 
-def _bridges(members, joining):
+def _first_per_cluster(bridges):
+    """The first :data:`BRIDGES_LISTED` bridges, at most :data:`BRIDGES_PER_CLUSTER` per cluster."""
+    taken, out = {}, []
+    for bridge in bridges:
+        if taken.get(bridge["cluster"], 0) < BRIDGES_PER_CLUSTER:
+            taken[bridge["cluster"]] = taken.get(bridge["cluster"], 0) + 1
+            out.append(bridge)
+            if len(out) == BRIDGES_LISTED:
+                break
+    return out
+
+
+def _bridges(members, joining, significant):
     """The files of clusters that join parts, most binding first.
 
     Graph: a node per part (user group or lone file) and per cluster, an edge per distinct
     (part, cluster) pair; a node weighs its placed files. An edge whose removal disconnects the
     bundle (a graph bridge) ``holds`` the placed files of the smaller side; other edges hold 0.
-    Order: ``holds``, then the groups the file's cluster joins, then path.
+    Order: ``holds`` when it reaches ``significant`` files (a part worth placing on its own),
+    then the groups the file's cluster joins, then cluster and path.
     """
     import pandas as pd
 
@@ -235,7 +251,7 @@ def _bridges(members, joining):
                     "cluster": int(row["cluster"]), "split": row["split"],
                     "joins": int(joins.iloc[i]),
                     "holds": int(held[(part_codes[i], n_parts + cluster_codes[i])])})
-    out.sort(key=lambda b: (-b["holds"], -b["joins"], b["path"]))
+    out.sort(key=lambda b: (-b["holds"] if b["holds"] >= significant else 0, -b["joins"], b["cluster"], b["path"]))
     return out
 
 

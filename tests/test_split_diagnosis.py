@@ -72,6 +72,20 @@ class TestDiagnoseSplit:
         # the loose files are bundles of one: too small to list after the chain
         assert len(found["bundles"]) == 1
 
+    def test_listed_bridges_name_several_clusters(self):
+        """A cluster spanning eight groups contributes at most three listed files; all are counted."""
+        rows = [(f"g{g}/f{i}.png", CLASSES[i % 4], f"g{g}", 0 if i == 0 else 1 if i == 1 and g < 2 else pd.NA)
+                for g in range(8) for i in range(5)]
+        path, label, group, cluster = zip(*rows)
+        m = pd.DataFrame({"path": path, "label": label, "group": group, "issues": "",
+                          "dup_group": pd.array(cluster, dtype="Int64")})
+        top = diagnose_split(split(m, seed=0))["bundles"][0]
+        assert (top["bridge_files"], top["joining_clusters"]) == (10, 2)
+        assert [b["cluster"] for b in top["bridges"]] == [0, 0, 0, 1, 1]
+        # g2..g7 hang on cluster 0 alone (5 files each); g0 and g1 are also tied by cluster 1
+        assert [b["holds"] for b in top["bridges"]] == [5, 5, 5, 0, 0]
+        assert [b["joins"] for b in top["bridges"]] == [8, 8, 8, 2, 2]
+
     def test_chain_missing_classes_blame_chaining_not_groups(self):
         """Classes with many groups but too few bundles are put down to chaining."""
         found = diagnose_split(split(chain_manifest(groups=20, loose=0), seed=0))
