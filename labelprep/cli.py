@@ -138,8 +138,9 @@ _fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "nev
                         help="Exit with status 1 when any file has an issue of this severity or worse.")
 # the split's own gate: its ratios or class coverage missed (labelprep.split_diagnosis says why)
 SHORTFALL = "shortfall"
-_SHORTFALL_HELP = ("'shortfall' exits with status 1 when the split misses a ratio by more than 2% "
-                   "of the files or leaves a class out of a split; the warning names the cause.")
+_SHORTFALL_HELP = (f"'shortfall' exits with status 1 when the split misses a ratio by more than "
+                   f"{defaults.SPLIT_TOLERANCE:.0%} of the files or leaves a class out of a split; "
+                   "the warning names the cause.")
 _fail_on_split = click.option("--fail-on", type=click.Choice([SHORTFALL, "never"]), default="never",
                               show_default=True, help=_SHORTFALL_HELP)
 _fail_on_prepare = click.option(

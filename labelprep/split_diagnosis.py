@@ -25,10 +25,11 @@ from __future__ import annotations
 
 import numpy as np
 
+from .defaults import SPLIT_TOLERANCE
 from .errors import ParameterError
 from .splits import SPLIT_NAMES, _check_folds, _check_manifest, _check_ratios, _components, _link_keys
 
-SIZE_TOLERANCE = 0.02
+SIZE_TOLERANCE = SPLIT_TOLERANCE
 """Largest ``|share of rows in a split - its ratio|`` that counts as reaching the ratio (the
 size-deviation target of the project's split benchmark, benchmarks/split_quality.py)."""
 
