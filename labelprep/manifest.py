@@ -73,6 +73,7 @@ _COLUMN_LIST = [
     Column("phash_c70", "str", "scan", "perceptual hash (as phash) of the centred box keeping 70% of each side"),
     Column("phash_mirror", "str", "scan", "perceptual hash of the left-right mirrored image; used by group --flips"),
     Column("detail", "Float64", "scan", "share of the hash thumbnail's AC energy above the hashed frequencies; below 0.05 the image counts as low-detail"),
+    Column("sketch", "str", "scan", "the 32x32 grayscale thumbnail behind phash, its 1,024 bytes in base64; compares two images on their pixels"),
     # grouping
     Column("bundle", "Int64", "group", "id of the rows that must share one split: near-duplicate clusters joined with user groups"),
     Column("mixed_labels", "boolean", "group", "the row's near-duplicate cluster holds more than one label (label-conflict unless kept)"),
