@@ -27,6 +27,7 @@ _EXPORTS = {
     "vet": "labelcheck",
     "split": "splits",
     "split_summary": "splits",
+    "diagnose_split": "split_diagnosis",
     "audit": "audits",
     "report": "reports",
     "export": "exports",

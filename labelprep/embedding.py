@@ -482,7 +482,7 @@ def available() -> bool:
                for name in ("onnx", "onnxruntime", "cv2", WEIGHTS_PACKAGE))
 
 
-def features_for(manifest, root, *, features="auto", model=None, jobs=None, cluster=None,
+def features_for(manifest, root, *, features="auto", features_model=None, jobs=None, cluster=None,
                  cache=None, progress=None):
     """The embeddings the group and vet stages use, or None for the model-free sketch.
 
@@ -491,7 +491,7 @@ def features_for(manifest, root, *, features="auto", model=None, jobs=None, clus
     features : {"auto", "sketch", "model"}
         ``"model"`` needs the features extra (or ``model``); ``"auto"`` uses it when installed;
         ``"sketch"`` never runs a network.
-    model : path, optional
+    features_model : path, optional
         A user's ONNX model (implies ``"model"`` unless ``"sketch"`` is asked).
     root, jobs, cluster, cache, progress
         As in :func:`embed`. With ``root`` None (the files cannot be found) ``"auto"`` falls
@@ -510,7 +510,7 @@ def features_for(manifest, root, *, features="auto", model=None, jobs=None, clus
     """
     if features not in FEATURE_KINDS:
         raise ParameterError(f"features must be one of {', '.join(FEATURE_KINDS)}; got features={features!r}")
-    model = validate_model(model)
+    model = validate_model(features_model)
     wanted = features == "model" or (features == "auto" and root is not None
                                      and (model is not None or available()))
     if not wanted:

@@ -42,16 +42,16 @@ _RESIDUAL_DIMENSIONS = 32  # components of the sketch pixels that oddness is mea
 _STAGE = "vet"
 
 
-def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
+def vet(manifest, *, embeddings=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
         max_oddness=MAX_ODDNESS, seed=0):
     """Flag likely mislabelled files and outliers.
 
     Parameters
     ----------
     manifest : pandas.DataFrame
-        Needs ``path`` and ``label``; ``sketch`` unless ``features`` is given; uses
+        Needs ``path`` and ``label``; ``sketch`` unless ``embeddings`` are given; uses
         ``sha256`` (exact copies do not vote). Every labelled row with features is vetted.
-    features : ndarray, shape (len(manifest), d), optional
+    embeddings : ndarray, shape (len(manifest), d), optional
         One embedding per row (rows of NaN where none). With both these and ``sketch``, the
         kind whose neighbours agree more often with the labels (``attrs["vet"]["agreement"]``)
         is used; without them, the model-free sketch.
@@ -76,7 +76,7 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
     >>> import numpy as np, pandas as pd
     >>> m = pd.DataFrame({"path": [f"{i}.png" for i in range(6)], "label": list("aaabbb")})
     >>> x = np.array([[1, 0], [1, .1], [0, 1], [0, 1], [0, 1.1], [.1, 1]])
-    >>> vet(m, features=x, neighbours=2)["likely_label"].tolist()
+    >>> vet(m, embeddings=x, neighbours=2)["likely_label"].tolist()
     ['', '', 'b', '', '', '']
     """
     import numpy as np
@@ -85,7 +85,7 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
     if not isinstance(manifest, pd.DataFrame):
         raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
     missing = [c for c in ("path", "label") if c not in manifest.columns]
-    if features is None and "sketch" not in manifest.columns:
+    if embeddings is None and "sketch" not in manifest.columns:
         missing.append("sketch")
     if missing:
         raise ParameterError(f"manifest lacks column(s) {', '.join(missing)}")
@@ -95,11 +95,10 @@ def vet(manifest, *, features=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT,
         raise ParameterError(f"min_doubt must be in (0, 1], got min_doubt={min_doubt!r}")
     if not max_oddness > 1:
         raise ParameterError(f"max_oddness must be above 1, got max_oddness={max_oddness!r}")
-    if features is not None:
-        features = np.asarray(features, dtype=np.float32)
-        if features.ndim != 2 or len(features) != len(manifest):
-            raise ParameterError(f"features must have one row per manifest row ({len(manifest)}), "
-                                 f"got shape {features.shape}")
+    features = None if embeddings is None else np.asarray(embeddings, dtype=np.float32)
+    if features is not None and (features.ndim != 2 or len(features) != len(manifest)):
+        raise ParameterError(f"embeddings must have one row per manifest row ({len(manifest)}), "
+                             f"got shape {features.shape}")
 
     from .manifest import coerce
 

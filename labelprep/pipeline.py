@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from . import defaults
+from . import options as spec
 from .errors import InputError
 
 MANIFEST_NAME = "manifest.csv"
@@ -12,24 +12,18 @@ REPORT_JSON = "report.json"
 REPORT_HTML = "report.html"
 
 
-def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_by_source=False,
-            include_hidden=False,
-            jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
-            max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
-            max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=False, ratios=defaults.RATIOS,
-            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None,
-            features=defaults.FEATURES, features_model=None, neighbours=defaults.NEIGHBOURS,
-            min_doubt=defaults.MIN_DOUBT, max_oddness=defaults.MAX_ODDNESS):
+def prepare(root, out, *, force=False, progress=None, **options):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 
     ``root`` is a folder, an archive or a list of them (several sources, see
     :mod:`labelprep.sources`). A manifest already in ``out`` from an earlier run is used as the rescan cache: unchanged files
-    are not decoded again. Options are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
-    :func:`~labelprep.group`, :func:`~labelprep.vet` and :func:`~labelprep.split` (``features``
-    and ``features_model`` as :func:`labelprep.embedding.features_for` takes them: learned
-    features add same-scene links to the clusters and drive the vet stage); ``keep_from`` is a manifest path or
-    DataFrame whose split is kept. ``cluster`` (a Dask scheduler address) decodes the files on
-    that cluster's workers, as in :func:`~labelprep.scan`.
+    are not decoded again. ``options`` are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
+    :func:`labelprep.embedding.features_for`, :func:`~labelprep.group`, :func:`~labelprep.vet` and
+    :func:`~labelprep.split`, as listed in :data:`labelprep.options.SPEC`
+    (an option left out takes its default; one that is not there raises ``TypeError``);
+    ``keep_from`` is a manifest path or DataFrame whose split is kept. ``cluster`` (a Dask
+    scheduler address) decodes the files on that cluster's workers, as in :func:`~labelprep.scan`.
+    The sidecar records every option that shapes the result (:func:`labelprep.options.record`).
 
     Returns
     -------
@@ -48,44 +42,28 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     from .sources import describe, name_roots, roots_of
     from .splits import split
 
+    chosen = spec.resolve(options, *spec.STAGES)
     out = Path(out)
     where = describe(name_roots(root))
     if out.exists() and not out.is_dir():
         raise InputError(f"--out {out} exists and is not a folder")
     out.mkdir(parents=True, exist_ok=True)
     target = out / MANIFEST_NAME
-    manifest.guard_output(target, force=force)
-    for name in (REPORT_JSON, REPORT_HTML):  # refuse before the work, not after it
-        manifest.guard_output(out / name, force=force, marker=b"labelprep")
-    previous = previous_manifest(target, root=root, max_pixels=max_pixels)
+    for path in (target, out / REPORT_JSON, out / REPORT_HTML):  # refuse before the work, not after it
+        manifest.guard_output(path, force=force)
+    previous = previous_manifest(target, root=root, max_pixels=chosen["max_pixels"])
     journal = journal_path(target)
+    keep_from = chosen["keep_from"]
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
 
-    m = scan(root, layout=layout, labels=labels, group_pattern=group_pattern,
-             group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
-             previous=previous, journal=journal, progress=progress, cluster=cluster)
+    m = scan(root, previous=previous, journal=journal, progress=progress, **spec.for_stage("scan", chosen))
     scan_facts = m.attrs.get("scan", {})
-    m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
-              min_spread=min_spread)
-    m, feature_facts = _group_and_vet(m, roots_of(where), target, features=features,
-                                      features_model=features_model, jobs=jobs, cluster=cluster,
-                                      progress=progress, max_distance=max_distance,
-                                      keep_conflicts=keep_conflicts, flips=flips, neighbours=neighbours,
-                                      min_doubt=min_doubt, max_oddness=max_oddness, seed=seed)
-    m = split(m, ratios=ratios, seed=seed, folds=folds, keep_from=keep_from, progress=progress)
-    options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
-               "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,
-               "max_aspect": max_aspect, "min_spread": min_spread,
-               "max_distance": max_distance, "keep_conflicts": keep_conflicts, "flips": flips,
-               "ratios": list(ratios), "seed": seed, "folds": folds}
-    if group_by_source:
-        options["group_by_source"] = True
-    options.update(features=features, features_model=features_model and str(features_model),
-                   neighbours=neighbours, min_doubt=min_doubt, max_oddness=max_oddness)
-    meta = {**where, "seed": seed,
-            "stages": {"prepare": {"options": options, "scan": scan_facts, "features": feature_facts,
-                                   "vet": m.attrs.get("vet", {})}}}
+    m = check(m, **spec.for_stage("check", chosen))
+    m, feature_facts = _group_and_vet(m, roots_of(where), target, chosen, progress)
+    m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
+    meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts,
+                                    features=feature_facts, vet=m.attrs.get("vet", {}))}
     manifest.write(m, target, meta=meta, force=True)
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
@@ -93,26 +71,22 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     return m, summary
 
 
-
-def _group_and_vet(m, root, manifest_path, *, features, features_model, jobs, cluster, progress,
-                   max_distance, keep_conflicts, flips, neighbours, min_doubt, max_oddness, seed):
+def _group_and_vet(m, root, manifest_path, chosen, progress):
     """group then vet, with the learned features (computed once, cached beside the manifest)
-    when they are asked or installed: the same-scene links join the clusters, and the votes run
-    on the embeddings instead of the sketches. Returns the manifest and the features' facts."""
+    when they are asked or installed: the same-scene links join the clusters, and the votes may
+    use the embeddings. Returns the manifest and the features' facts."""
     from .clusters import group
     from .embedding import cache_path, features_for
     from .labelcheck import vet
 
-    vectors, facts = features_for(m, root, features=features, model=features_model, jobs=jobs,
-                                  cluster=cluster, cache=cache_path(manifest_path), progress=progress)
+    vectors, facts = features_for(m, root, cache=cache_path(manifest_path), progress=progress,
+                                  **spec.for_stage("features", chosen))
     links = None
     if vectors is not None:
         from .scenes import scene_links
 
-        links = scene_links(m, root, vectors, flips=flips, jobs=jobs, cluster=cluster, seed=seed,
-                            progress=progress)
-    m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips,
-              progress=progress, cluster=cluster, scene_links=links)
-    m = vet(m, features=vectors, neighbours=neighbours, min_doubt=min_doubt, max_oddness=max_oddness,
-            seed=seed)
+        links = scene_links(m, root, vectors, flips=chosen["flips"], jobs=chosen["jobs"],
+                            cluster=chosen["cluster"], seed=chosen["seed"], progress=progress)
+    m = group(m, progress=progress, scene_links=links, **spec.for_stage("group", chosen))
+    m = vet(m, embeddings=vectors, **spec.for_stage("vet", chosen))
     return m, facts

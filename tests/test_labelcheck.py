@@ -106,7 +106,7 @@ class TestFeatures:
                           "sha256": [str(i) for i in range(n)],
                           "sketch": [fingerprint(Image.fromarray(rng.integers(0, 255, (64, 64), dtype=np.uint8)))["sketch"]
                                      for _ in range(n)]})
-        out = vet(m, features=features)
+        out = vet(m, embeddings=features)
         assert out.attrs["vet"]["features"] == "embedding"
         assert blank  # the sketch column was there to choose from
         assert set(out.attrs["vet"]["agreement"]) == {"embedding", "sketch"}
@@ -114,7 +114,7 @@ class TestFeatures:
     def test_rows_without_features_are_not_vetted(self):
         m = pd.DataFrame({"path": list("abcd"), "label": list("xxyy")})
         features = np.array([[1, 0], [1, 0.1], [np.nan, np.nan], [0, 1]])
-        out = vet(m, features=features, neighbours=1)
+        out = vet(m, embeddings=features, neighbours=1)
         assert out["label_doubt"].isna().tolist() == [False, False, True, False]
 
     def test_orientation_histograms_see_edge_direction(self):
@@ -144,7 +144,7 @@ class TestValidation:
 
     def test_features_of_another_length_are_refused(self):
         with pytest.raises(ParameterError, match="one row per manifest row"):
-            vet(pd.DataFrame({"path": ["a"], "label": ["x"]}), features=np.zeros((2, 3)))
+            vet(pd.DataFrame({"path": ["a"], "label": ["x"]}), embeddings=np.zeros((2, 3)))
 
     def test_not_a_frame(self):
         with pytest.raises(TypeError, match="DataFrame"):
