@@ -25,8 +25,8 @@ from .errors import InputError
 
 CANDIDATES = 5
 MIN_SIMILARITY = 0.5
-"""Lowest embedding similarity sent to the keypoint check (benchmarks/hard_copies.py: every
-true pair of the hard edits scored above it)."""
+"""Lowest embedding similarity sent to the keypoint check: a bound on the work, not a decision
+(benchmarks/hard_copies.py saw true pairs of the hard edits from 0.52 up)."""
 MIN_INLIERS = 10
 """Measured by benchmarks/hard_copies.py: distinct tiles of one texture (brick, gravel, flowers)
 keep at most 9 inliers under these matching rules, while 72% of the true candidate pairs reach
