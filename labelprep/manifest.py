@@ -10,8 +10,10 @@ each column's meaning here and the stage that computes it by the ``stage`` field
 from __future__ import annotations
 
 import contextlib
+import errno
 import json
 import os
+import secrets
 import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -416,6 +418,23 @@ def _looks_like_manifest(path: Path) -> bool:
     return head.startswith(b"path,") or head.startswith(b"PAR1")
 
 
+def _fresh_file(path: Path) -> str:
+    """Create a new empty file with a unique name beside ``path`` and return its name.
+
+    Created with mode 0666, which the kernel reduces by the process's umask, so outputs get the
+    usual permissions without reading the umask (``os.umask`` can only be read by setting it,
+    a race with a host program's threads); ``O_EXCL`` makes the name ours alone.
+    """
+    for _ in range(100):
+        tmp = str(path.parent / f".{path.name}.{secrets.token_hex(6)}.tmp")
+        try:
+            os.close(os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))
+        except FileExistsError:
+            continue
+        return tmp
+    raise FileExistsError(errno.EEXIST, "no free temporary name", str(path.parent))
+
+
 @contextlib.contextmanager
 def atomic_path(path) -> Iterator[str]:
     """Yield a temporary name beside ``path``; on success rename it over ``path``, else remove it.
@@ -427,15 +446,10 @@ def atomic_path(path) -> Iterator[str]:
     if not path.parent.is_dir():
         raise InputError(f"cannot write {path}: folder {path.parent} does not exist")
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+        tmp = _fresh_file(path)
     except OSError as exc:
         raise InputError(f"cannot write {path}: {exc.strerror}") from exc
-    os.close(fd)
     try:
-        # mkstemp makes the file private (0600); outputs get the usual mode the umask allows
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
         yield tmp
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())

@@ -249,11 +249,14 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     reused, todo = _split_unchanged(where, files, known, resolve(progress))
 
     pieces = [reused]
-    if todo and cluster is None and resolve_jobs(jobs) > 1:
+    if todo and cluster is None:
         preload()  # before the pool forks, so that workers do not each import Pillow and scipy
     work = functools.partial(sources.probe_unit, max_pixels=max_pixels, probe=probe)
     tasks = sources.tasks(where(rel) for rel in todo)
-    results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(todo), jobs), cluster=cluster)
+    # isolated: even one job probes in a worker process, where the per-file time limit may arm
+    # SIGALRM without touching the caller's signal handling
+    results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(todo), jobs), cluster=cluster,
+                          isolated=bool(todo))
     facts_each = (facts for task_facts in results for facts in task_facts)
     # zip stops on ``todo`` and leaves ``results`` suspended: close it here, not when it is
     # collected, so that a signal arriving while the pool shuts down is raised, not swallowed
