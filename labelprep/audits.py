@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from . import defaults
 from .errors import ParameterError
+from .validation import check_manifest
 
 SPLIT_ORDER = ("train", "val", "test")
 _HEX_DIGITS = frozenset("0123456789abcdef")
@@ -60,19 +61,13 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
     >>> result["balance"]["splits"]["test"]["counts"]
     {'cat': 1, 'dog': 1}
     """
-    import pandas as pd
-
     from .balance import by_split
 
-    if not isinstance(manifest, pd.DataFrame):
-        raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
+    check_manifest(manifest, ["path", "label"])
     if isinstance(max_distance, bool) or not isinstance(max_distance, int):
         raise TypeError(f"max_distance must be an int, got {type(max_distance).__name__}")
     if not 0 <= max_distance <= 64:
         raise ParameterError(f"max_distance must be 0 to 64 bits, got max_distance={max_distance!r}")
-    for column in ("path", "label"):
-        if column not in manifest.columns:
-            raise ParameterError(f"the manifest has no {column!r} column")
     column = _split_column(manifest, split_column)
 
     frame = manifest.assign(_split=manifest[column].fillna("").astype(str),
@@ -161,8 +156,7 @@ def _split_column(manifest, split_column):
     if split_column is not None:
         if not isinstance(split_column, str):
             raise TypeError(f"split_column must be a column name (str), got {type(split_column).__name__}")
-        if split_column not in manifest.columns:
-            raise ParameterError(f"the manifest has no {split_column!r} column")
+        check_manifest(manifest, [split_column])
         return split_column
     for column in ("split", "given_split"):
         if column in manifest.columns and (manifest[column].fillna("").astype(str) != "").any():

@@ -11,7 +11,8 @@ from dataclasses import dataclass
 from typing import Callable
 
 from . import codes, defaults
-from .errors import InputError, ParameterError
+from .errors import ParameterError
+from .validation import check_manifest
 
 # probe faults that have a code of their own (see RULES); any other fault (a decoder error, a
 # damaged header) is reported as unreadable, so no failed file can come out clean
@@ -227,9 +228,7 @@ def check(manifest, *, min_side: int = defaults.MIN_SIDE, max_pixels: int = defa
     >>> check(m)["issues"].tolist()
     ['', 'has-location;too-small;unusual-mode;wrong-extension']
     """
-    missing = [c for c in _NEEDED if c not in manifest.columns]
-    if missing:
-        raise InputError(f"the manifest lacks column(s) {', '.join(missing)}; make it with labelprep scan")
+    check_manifest(manifest, _NEEDED, hint="make it with labelprep scan")
     limits = limits_of(min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
                        min_spread=min_spread)
     out = manifest.copy()

@@ -7,7 +7,6 @@ usage or unreadable input, 1 for a failed ``--fail-on`` gate.
 
 from __future__ import annotations
 
-import functools
 from pathlib import Path
 
 import click

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from labelprep.audits import audit, render
-from labelprep.errors import ParameterError
+from labelprep.errors import InputError, ParameterError
 from labelprep.manifest import write
 from labelprep.splits import split
 
@@ -145,7 +145,7 @@ class TestBalanceAndColumns:
     @pytest.mark.parametrize("kwargs, error, match", [
         ({"max_distance": 65}, ParameterError, "0 to 64"),
         ({"max_distance": 2.5}, TypeError, "int"),
-        ({"split_column": "nope"}, ParameterError, "'nope'"),
+        ({"split_column": "nope"}, InputError, "'nope'"),
         ({"split_column": 3}, TypeError, "str"),
     ])
     def test_bad_options(self, kwargs, error, match):

@@ -138,3 +138,21 @@ class TestDemoCommand:
         result = runner.invoke(main, ["demo", str(tmp_path), "-q"])
         assert result.exit_code != 0 and "--force" in result.output and "Traceback" not in result.output
         assert (photos / "mine.jpg").read_bytes() == b"a user's file"
+
+
+@pytest.mark.parametrize("stage", ["check", "group", "split", "report", "audit", "by_split"])
+def test_every_stage_refuses_a_non_manifest_with_its_own_errors(stage):
+    """A list where a manifest goes is a TypeError naming the parameter; a manifest without the
+    columns a stage reads is an InputError naming them, the same in every stage (never an
+    AttributeError from pandas, never a ParameterError in one stage and an InputError in another)."""
+    import pandas as pd
+
+    from labelprep.balance import by_split
+    from labelprep.errors import InputError
+
+    func = {"check": labelprep.check, "group": labelprep.group, "split": labelprep.split,
+            "report": labelprep.report, "audit": labelprep.audit, "by_split": by_split}[stage]
+    with pytest.raises(TypeError, match="manifest must be a pandas DataFrame, got list"):
+        func([{"path": "a.png"}])
+    with pytest.raises(InputError, match="has no column"):
+        func(pd.DataFrame({"other": ["a.png"]}))

@@ -9,7 +9,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from labelprep import codes
-from labelprep.errors import ParameterError
+from labelprep.errors import InputError, ParameterError
 from labelprep.manifest import to_csv_bytes
 from labelprep.splits import split, split_summary
 
@@ -283,7 +283,7 @@ class TestParameters:
         ({"folds": 1}, ParameterError),
         ({"folds": 2.0}, TypeError),
         ({"keep_from": "old.csv"}, TypeError),
-        ({"keep_from": pd.DataFrame({"path": []})}, ParameterError),
+        ({"keep_from": pd.DataFrame({"path": []})}, InputError),
     ])
     def test_bad_options(self, kwargs, error):
         with pytest.raises(error):
@@ -292,7 +292,7 @@ class TestParameters:
     def test_bad_manifest(self):
         with pytest.raises(TypeError, match="DataFrame"):
             split([{"path": "a"}])
-        with pytest.raises(ParameterError, match="'label'"):
+        with pytest.raises(InputError, match="'label'"):
             split(pd.DataFrame({"path": ["a"]}))
 
 
