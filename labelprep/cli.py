@@ -10,7 +10,6 @@ from :data:`labelprep.options.SPEC`.
 
 from __future__ import annotations
 
-import functools
 import os
 from pathlib import Path
 
