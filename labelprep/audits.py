@@ -93,6 +93,50 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
             "balance": by_split(manifest, split_column=column)}
 
 
+def audit_path(target, *, max_distance=defaults.MAX_DISTANCE, split_column=None, progress=None,
+               **scan_options) -> dict:
+    """:func:`audit` of a manifest file, or of a folder laid out ``ROOT/<train|val|test>/<label>/``.
+
+    A folder is scanned first, in memory only (nothing is written beside it), with
+    ``scan_options`` (those of :func:`labelprep.scan`: ``jobs``, ``include_hidden``, ...); a
+    manifest (a file, or a folder of Parquet part files) is read, and they do not apply.
+
+    Examples
+    --------
+    >>> result = audit_path("dataset/")                       # doctest: +SKIP
+    >>> leak_gate(result, "leaks")                            # doctest: +SKIP
+    """
+    from pathlib import Path
+
+    from .manifest import read
+    from .scanner import scan
+
+    target = Path(target)
+    if target.is_dir() and not _is_part_folder(target):
+        m = scan(target, progress=progress, **scan_options)
+    else:
+        m = read(target)
+    return audit(m, max_distance=max_distance, split_column=split_column)
+
+
+def _is_part_folder(folder) -> bool:
+    from .manifest import part_files
+
+    return bool(part_files(folder))
+
+
+def leak_gate(result: dict, fail_on: str) -> None:
+    """Raise :class:`~labelprep.errors.GateFailed` when ``fail_on`` is ``"leaks"`` and the
+    :func:`audit` ``result`` holds a pair or a group across splits; ``"never"`` never raises."""
+    from .errors import GateFailed
+
+    if fail_on not in ("leaks", "never"):
+        raise ParameterError(f"fail_on must be 'leaks' or 'never', got fail_on={fail_on!r}")
+    if fail_on == "leaks" and (result["near_leaks"] or result["group_leaks"]):
+        raise GateFailed(f"{len(result['near_leaks'])} near-duplicate pairs and "
+                         f"{len(result['group_leaks'])} groups cross splits")
+
+
 def render(result: dict, *, limit: int = 20) -> str:
     """Terminal text for an :func:`audit` result, listing at most ``limit`` pairs and groups.
 

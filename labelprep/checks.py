@@ -208,8 +208,7 @@ def check(manifest, *, min_side: int = defaults.MIN_SIDE, max_pixels: int = defa
     Returns
     -------
     DataFrame
-        A copy with the ``issues`` column updated and ``attrs["check"]`` holding the limits; no
-        row is removed.
+        A copy with the ``issues`` column updated; no row is removed.
 
     Raises
     ------
@@ -236,7 +235,6 @@ def check(manifest, *, min_side: int = defaults.MIN_SIDE, max_pixels: int = defa
         out["issues"] = ""
     found = {code: rule.flags(out, limits).to_numpy(dtype=bool) for code, rule in RULES.items()}
     out["issues"] = codes.replace_stage_codes(out["issues"], "check", found)
-    out.attrs["check"] = limits
     return out
 
 
@@ -261,10 +259,10 @@ def reason(row, code: str, *, limits: dict | None = None) -> str:
 def summary_lines(manifest, *, examples: int = 3, limits: dict | None = None) -> list[str]:
     """Lines for the terminal: per code its severity and count, then the first few files and why.
 
-    ``limits`` default to those the manifest was checked with (``attrs["check"]``), else the
-    defaults.
+    ``limits`` are those the manifest was checked with (:func:`limits_of` of the check's
+    options); the defaults when not given.
     """
-    limits = limits or manifest.attrs.get("check") or limits_of()
+    limits = limits or limits_of()
     tally = codes.counts(manifest["issues"])
     if not tally:
         return ["no issues found"]

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import subprocess
 import sys
 
@@ -158,8 +157,6 @@ def test_every_stage_refuses_a_non_manifest_with_its_own_errors(stage):
     """A list where a manifest goes is a TypeError naming the parameter; a manifest without the
     columns a stage reads is an InputError naming them, the same in every stage (never an
     AttributeError from pandas, never a ParameterError in one stage and an InputError in another)."""
-    import pandas as pd
-
     from labelprep.balance import by_split
     from labelprep.errors import InputError
 

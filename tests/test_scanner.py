@@ -252,7 +252,7 @@ class TestScan:
         assert sum(f == "" for f in faults.values()) == 12
 
     def test_counts(self, mixed_tree):
-        assert scan(mixed_tree, jobs=1).attrs["scan"]["probed"] == 14
+        assert scan(mixed_tree, jobs=1, return_facts=True)[1]["probed"] == 14
 
     @pytest.mark.parametrize("bad", [0, -5, 2.5, True])
     def test_bad_max_pixels(self, mixed_tree, bad):
@@ -263,15 +263,15 @@ class TestScan:
 class TestRescan:
     def test_unchanged_tree_is_not_decoded_again(self, mixed_tree):
         first = scan(mixed_tree, jobs=1)
-        again = scan(mixed_tree, jobs=1, previous=first)
-        assert again.attrs["scan"]["probed"] == 0 and again.attrs["scan"]["reused"] == 14
+        again, facts = scan(mixed_tree, jobs=1, previous=first, return_facts=True)
+        assert facts["probed"] == 0 and facts["reused"] == 14
         assert _csv(again) == _csv(first)
 
     def test_round_trip_through_the_written_manifest(self, mixed_tree, tmp_path):
         first = scan(mixed_tree, jobs=1)
         manifest.write(first, tmp_path / "m.csv")
-        again = scan(mixed_tree, jobs=1, previous=manifest.read(tmp_path / "m.csv"))
-        assert again.attrs["scan"]["probed"] == 0
+        again, facts = scan(mixed_tree, jobs=1, previous=manifest.read(tmp_path / "m.csv"), return_facts=True)
+        assert facts["probed"] == 0
         assert _csv(again) == _csv(first)
 
     def test_changed_mtime_or_size_is_probed_again(self, mixed_tree, write_image):
@@ -280,18 +280,18 @@ class TestRescan:
         os.utime(mixed_tree / "a/1.png", ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000_000))
         write_image(mixed_tree / "a/0.jpg", size=(600, 400), seed=99)  # new content, new size
         write_image(mixed_tree / "c/new.jpg", seed=7)
-        again = scan(mixed_tree, jobs=1, previous=first)
-        assert again.attrs["scan"]["probed"] == 3
+        again, facts = scan(mixed_tree, jobs=1, previous=first, return_facts=True)
+        assert facts["probed"] == 3
         assert _csv(again) == _csv(scan(mixed_tree, jobs=1))
 
     def test_manifest_missing_a_fact_column_is_not_trusted(self, mixed_tree):
         first = scan(mixed_tree, jobs=1).drop(columns=["spread"])
-        assert scan(mixed_tree, jobs=1, previous=first).attrs["scan"]["probed"] == 14
+        assert scan(mixed_tree, jobs=1, previous=first, return_facts=True)[1]["probed"] == 14
 
     def test_unreadable_rows_are_retried(self, mixed_tree):
         first = scan(mixed_tree, jobs=1)
         first.loc[first["path"] == "a/2.gif", "fault"] = "unreadable"
-        assert scan(mixed_tree, jobs=1, previous=first).attrs["scan"]["probed"] == 1
+        assert scan(mixed_tree, jobs=1, previous=first, return_facts=True)[1]["probed"] == 1
 
 
 class TestPreviousManifest:
@@ -326,8 +326,8 @@ class TestJournal:
             scan(mixed_tree, jobs=1, journal=log, progress=_stop_after(5))
         lines = log.read_text().splitlines()
         assert len(lines) == 1 + 5  # header + the five rows handed out before the interrupt
-        resumed = scan(mixed_tree, jobs=1, journal=log)
-        assert resumed.attrs["scan"]["probed"] == 14 - 5
+        resumed, facts = scan(mixed_tree, jobs=1, journal=log, return_facts=True)
+        assert facts["probed"] == 14 - 5
         assert _csv(resumed) == _csv(scan(mixed_tree, jobs=1))
         assert len(log.read_text().splitlines()) == 1 + 14
 
@@ -339,8 +339,8 @@ class TestJournal:
         whole = log.read_bytes()
         last = whole.rstrip(b"\n").rsplit(b"\n", 1)[1]
         log.write_bytes(whole + last[: len(last) // 2])  # a fifth row, torn
-        resumed = scan(mixed_tree, jobs=1, journal=log)
-        assert resumed.attrs["scan"]["probed"] == 14 - 4
+        resumed, facts = scan(mixed_tree, jobs=1, journal=log, return_facts=True)
+        assert facts["probed"] == 14 - 4
         rows = log.read_bytes().split(b"\n")
         parsed = [r for r in rows[1:] if r and _parses(r)]
         assert len(parsed) == 14 and len([r for r in rows if r]) == 1 + 14 + 1
@@ -349,8 +349,8 @@ class TestJournal:
         log = tmp_path / "j"
         with pytest.raises(KeyboardInterrupt):
             scan(mixed_tree, jobs=1, journal=log, progress=_stop_after(5), max_pixels=10_000)
-        again = scan(mixed_tree, jobs=1, journal=log)
-        assert again.attrs["scan"]["probed"] == 14
+        again, facts = scan(mixed_tree, jobs=1, journal=log, return_facts=True)
+        assert facts["probed"] == 14
         assert json.loads(log.read_text().splitlines()[0])["max_pixels"] != 10_000
 
     def test_rows_are_journaled_with_every_fact(self, mixed_tree, tmp_path):
