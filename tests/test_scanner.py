@@ -18,8 +18,9 @@ from PIL import Image, JpegImagePlugin
 from conftest import encode, textured
 from labelprep import formats, manifest
 from labelprep.cli import main
+from labelprep.errors import OutputExistsError
 from labelprep.probe import HASH_SIDE, _reduce, draft_for_hashing, probe
-from labelprep.scanner import FACTS, journal_path, previous_manifest, scan
+from labelprep.scanner import FACTS, journal_path, previous_manifest, scan, scan_to
 
 
 def _stop_after(k):
@@ -390,3 +391,34 @@ class TestScanCommand:
 def test_every_row_has_the_same_fact_columns(mixed_tree):
     """A decoded file's facts have exactly the keys of blank_facts (what a rescan may reuse)."""
     assert set(probe(mixed_tree / "a/0.jpg")) == set(FACTS)
+
+
+class TestScanTo:
+    """The library call behind `labelprep scan`: a Python user gets rescans and resume too."""
+
+    def test_rescan_decodes_nothing_unchanged(self, mixed_tree, tmp_path):
+        out = tmp_path / "m.csv"
+        first, facts = scan_to(mixed_tree, out, jobs=1)
+        assert facts["probed"] == 14 and manifest.read(out).shape == first.shape
+        side = manifest.read_sidecar(out)
+        assert side["stages"]["scan"]["result"]["probed"] == 14
+        again, facts = scan_to(mixed_tree, out, jobs=1)
+        assert facts == {**facts, "probed": 0, "reused": 14}
+        assert _csv(again) == _csv(first)
+
+    def test_an_interrupted_run_resumes_and_then_drops_its_journal(self, mixed_tree, tmp_path):
+        out = tmp_path / "m.csv"
+        with pytest.raises(KeyboardInterrupt):
+            scan_to(mixed_tree, out, jobs=1, progress=_stop_after(5))
+        assert not out.exists() and journal_path(out).exists()
+        resumed, facts = scan_to(mixed_tree, out, jobs=1)
+        assert facts["probed"] == 14 - 5 and not journal_path(out).exists()
+        assert out.read_bytes() == manifest.to_csv_bytes(resumed)
+
+    def test_options_are_checked_before_any_work(self, mixed_tree, tmp_path):
+        with pytest.raises(TypeError, match="min_sid"):
+            scan_to(mixed_tree, tmp_path / "m.csv", min_sid=3)
+        (tmp_path / "notes.csv").write_text("mine\n")
+        with pytest.raises(OutputExistsError):
+            scan_to(mixed_tree, tmp_path / "notes.csv", jobs=1)
+        assert (tmp_path / "notes.csv").read_text() == "mine\n"
