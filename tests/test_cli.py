@@ -166,3 +166,35 @@ def test_every_stage_refuses_a_non_manifest_with_its_own_errors(stage):
         func([{"path": "a.png"}])
     with pytest.raises(InputError, match="has no column"):
         func(pd.DataFrame({"other": ["a.png"]}))
+
+
+class TestGatesAndSplitCommand:
+    def test_prepare_fail_on_sets_the_exit_status(self, runner, class_tree, tmp_path):
+        """A truncated file is an error: --fail-on error exits 1 (a failed gate, after writing
+        everything), --fail-on warning too, --fail-on never 0; the outputs are the same."""
+        (class_tree / "cat" / "cut.jpg").write_bytes((class_tree / "cat" / "g0_cat_0.jpg").read_bytes()[:600])
+        outputs = {}
+        for level, status in (("never", 0), ("error", 1), ("warning", 1)):
+            out = tmp_path / level
+            result = runner.invoke(main, ["prepare", str(class_tree), "--out", str(out), "--jobs", "1",
+                                          "--fail-on", level, "-q"])
+            assert_handled(result, status)
+            if status:
+                assert "--fail-on " + level in result.output and "truncated" in result.output
+            outputs[level] = (out / "manifest.csv").read_bytes()
+        assert len(set(outputs.values())) == 1
+
+    def test_split_command_writes_the_split_and_prints_its_sizes(self, runner, class_tree, tmp_path):
+        out = tmp_path / "m.csv"
+        assert runner.invoke(main, ["scan", str(class_tree), "-o", str(out), "--jobs", "1", "-q"]).exit_code == 0
+        result = runner.invoke(main, ["split", str(out), "--ratios", "0.5,0.25,0.25", "--seed", "3"])
+        assert_handled(result, 0)
+        m = manifest.read(out)
+        library = labelprep.split(manifest.read(out), ratios=(0.5, 0.25, 0.25), seed=3)
+        assert m["split"].tolist() == library["split"].tolist()
+        counts = m["split"].value_counts()
+        assert f"train: {counts['train']}" in result.output and f"test: {counts['test']}" in result.output
+        assert manifest.read_sidecar(out)["stages"]["split"]["options"]["seed"] == 3
+        bad = runner.invoke(main, ["split", str(out), "--ratios", "0.5,0.6"])
+        assert_handled(bad, 2)
+        assert "ratios" in bad.output
