@@ -69,7 +69,6 @@ class _Group(click.Group):
 _existing_dir = click.Path(exists=True, file_okay=False, dir_okay=True, path_type=Path)
 # a root is a folder or an archive (.zip, .tar, .tar.gz, .tgz); sources.name_roots judges which
 _existing_root = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
-_existing_file = click.Path(exists=True, file_okay=True, dir_okay=False, path_type=Path)
 # a manifest is a file, or a folder of part files (partitioned Parquet); read() tells them apart
 _existing_manifest = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
 

@@ -237,7 +237,8 @@ def _csv_bytes(df) -> bytes:
     return text.encode("utf-8", errors="surrogateescape")
 
 
-def write(df, path, *, meta: dict | None = None, force: bool = False, partitions=None) -> Path:
+def write(df, path, *, meta: dict | None = None, force: bool = False, partitions=None,
+          new_sidecar: bool = False) -> Path:
     """Write ``df`` to ``path`` atomically, and its sidecar beside it.
 
     The :data:`CACHE_COLUMNS` go to the scan cache beside it (:func:`cache_path`), not into the
@@ -258,6 +259,10 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
         rows, written in parallel threads; readers such as ``dask.dataframe.read_parquet`` then
         take one part per task. When ``path`` already is such a folder, it stays one, with the
         same number of parts, unless ``partitions`` says otherwise.
+    new_sidecar : bool, default False
+        Start the sidecar afresh with ``meta`` instead of merging it into the old one: for a
+        manifest whose every row is new (a scan, a prepare), which no earlier stage's record or
+        seed describes any more.
 
     Returns
     -------
@@ -296,7 +301,7 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
         data = _csv_bytes(df[["path", "sha256", *cached]])
         with atomic_path(cache_path(path)) as tmp:
             Path(tmp).write_bytes(data)
-    write_sidecar(path, meta or {})
+    write_sidecar(path, meta or {}, merge=not new_sidecar)
     return path
 
 
@@ -499,16 +504,17 @@ def write_text(path, text: str, *, force: bool = False, ledger: bool = True) -> 
     return path
 
 
-def write_sidecar(path, meta: dict) -> Path:
+def write_sidecar(path, meta: dict, *, merge: bool = True) -> Path:
     """Write the JSON sidecar of manifest ``path``, merging ``meta`` into what is there.
 
     Stages record their options under their own key (``meta["stages"][name]``), so a manifest
-    that went through scan, check and group keeps all three.
+    that went through scan, check and group keeps all three. With ``merge=False`` the old
+    sidecar is replaced, not merged into.
     """
     from . import __version__
 
     side = sidecar_path(path)
-    old = read_sidecar(path)
+    old = read_sidecar(path) if merge else {}
     stages = dict(old.get("stages", {}))
     stages.update(meta.get("stages", {}))
     merged = {**old, **meta, "stages": stages, "format": FORMAT_TAG, "tool": "labelprep",

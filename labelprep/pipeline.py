@@ -62,7 +62,7 @@ def prepare(root, out, *, force=False, progress=None, **options):
         m = group(m, progress=progress, **spec.for_stage("group", chosen))
         m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
         meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts)}
-        manifest.write(m, target, meta=meta, force=True)
+        manifest.write(m, target, meta=meta, force=True, new_sidecar=True)
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
                      meta=manifest.read_sidecar(target), force=force)
     return m, summary

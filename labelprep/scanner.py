@@ -377,7 +377,7 @@ def scan_to(root, output, *, partitions=None, force: bool = False, progress=None
                          **spec.for_stage("scan", chosen))
         meta = {**sources.describe(sources.name_roots(root)),
                 **spec.sidecar("scan", spec.record(chosen, "scan"), result=facts)}
-        manifest.write(df, output, meta=meta, force=True, partitions=partitions)
+        manifest.write(df, output, meta=meta, force=True, partitions=partitions, new_sidecar=True)
     return df, facts
 
 

@@ -16,6 +16,7 @@ import pytest
 from PIL import Image, JpegImagePlugin
 
 from conftest import encode, textured
+import labelprep
 from labelprep import formats, manifest
 from labelprep.cli import main
 from labelprep.errors import OutputExistsError
@@ -402,8 +403,11 @@ class TestScanTo:
         assert facts["probed"] == 14 and manifest.read(out).shape == first.shape
         side = manifest.read_sidecar(out)
         assert side["stages"]["scan"]["result"]["probed"] == 14
+        manifest.write(labelprep.split(first, seed=4), out, meta={"seed": 4, "stages": {"split": {}}})
         again, facts = scan_to(mixed_tree, out, jobs=1)
         assert facts == {**facts, "probed": 0, "reused": 14}
+        # the rows are new: no record of the split they no longer hold, nor its seed
+        assert set(manifest.read_sidecar(out)["stages"]) == {"scan"} and "seed" not in manifest.read_sidecar(out)
         assert _csv(again) == _csv(first)
 
     def test_an_interrupted_run_resumes_and_then_drops_its_journal(self, mixed_tree, tmp_path):
