@@ -281,6 +281,10 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
     if partitions is not None:
         check_partitions(partitions, path)
     guard_output(path, force=force)
+    # the sidecar first: a manifest is known as labelprep's by its sidecar (guard_output), so an
+    # interrupt between the two writes must leave a sidecar without its new manifest, never a
+    # new manifest that a rerun would refuse to replace
+    write_sidecar(path, meta or {}, merge=not new_sidecar)
     cached = [c for c in CACHE_COLUMNS if c in df.columns]
     if partitions is not None:
         _write_parts(df, path, partitions)
@@ -301,7 +305,6 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
         data = _csv_bytes(df[["path", "sha256", *cached]])
         with atomic_path(cache_path(path)) as tmp:
             Path(tmp).write_bytes(data)
-    write_sidecar(path, meta or {}, merge=not new_sidecar)
     return path
 
 

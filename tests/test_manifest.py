@@ -130,3 +130,20 @@ def test_outputs_get_the_umask_mode_without_the_umask_being_set(tmp_path):
     for name in ("r.txt", "m.csv"):
         assert (tmp_path / name).stat().st_mode & 0o777 == 0o640
     assert [p.name for p in tmp_path.iterdir() if p.name.endswith(".tmp")] == []
+
+
+def test_an_interrupted_first_write_leaves_nothing_a_rerun_refuses(tmp_path, monkeypatch):
+    """Ctrl-C while the manifest is written: the rerun must not find a manifest without the
+    sidecar that marks it as labelprep's (it would refuse to replace it without --force)."""
+    target = tmp_path / "m.csv"
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    with monkeypatch.context() as mp:
+        mp.setattr(manifest, "write_sidecar", interrupted)
+        with pytest.raises(KeyboardInterrupt):
+            manifest.write(_sample(), target)
+    assert not target.exists() or manifest.sidecar_path(target).exists()
+    manifest.write(_sample(), target)
+    assert manifest.read(target)["path"].tolist() == _sample()["path"].tolist()

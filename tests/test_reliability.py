@@ -131,6 +131,23 @@ class TestSourcesUntouched:
             assert snapshot(tmp_path / "outside") == outside
 
 
+class _RacingProbe:
+    """The probe, after doing what another program does between walk and read. At module level,
+    so that it pickles: a scan probes in a worker process even with one job."""
+
+    def __init__(self, gone, changed, new_bytes):
+        self.gone, self.changed, self.new_bytes = gone, changed, new_bytes
+
+    def __call__(self, path, **kwargs):
+        from labelprep.probe import probe
+
+        if path == self.gone:
+            os.unlink(path)
+        elif path == str(self.changed):
+            self.changed.write_bytes(self.new_bytes)
+        return probe(path, **kwargs)
+
+
 class TestHostileTree:
     @pytest.mark.parametrize("ext", ["csv", "parquet"])
     def test_every_name_round_trips_exactly(self, runner, hostile_tree, tmp_path, ext):
@@ -215,16 +232,7 @@ class TestHostileTree:
         gone = str(hostile_tree / "cls a" / "with space.png")
         changed = hostile_tree / "cls a" / "c,omma.png"
         new_bytes = _png(77)
-        real_probe = scanner_mod.probe
-
-        def racing_probe(path, **kwargs):  # what another program does between walk and read
-            if path == gone:
-                os.unlink(path)
-            elif path == str(changed):
-                changed.write_bytes(new_bytes)
-            return real_probe(path, **kwargs)
-
-        monkeypatch.setattr(scanner_mod, "probe", racing_probe)
+        monkeypatch.setattr(scanner_mod, "probe", _RacingProbe(gone, changed, new_bytes))
         m = check(scan(hostile_tree, jobs=1)).set_index("path")
         tally(faults=2)
         assert m.loc["cls a/with space.png", "fault_detail"] == "No such file or directory"
