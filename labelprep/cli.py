@@ -84,6 +84,17 @@ SPLIT_OPTIONS = options.click_options("split")
 _fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="never",
                         show_default=True,
                         help="Exit with status 1 when any file has an issue of this severity or worse.")
+# the split's own gate: its ratios or class coverage missed (labelprep.split_diagnosis says why)
+SHORTFALL = "shortfall"
+_SHORTFALL_HELP = (f"'shortfall' exits with status 1 when the split misses a ratio by more than "
+                   f"{defaults.SPLIT_TOLERANCE:.0%} of the files or leaves a class out of a split; "
+                   "the warning names the cause.")
+_fail_on_split = click.option("--fail-on", type=click.Choice([SHORTFALL, "never"]), default="never",
+                              show_default=True, help=_SHORTFALL_HELP)
+_fail_on_prepare = click.option(
+    "--fail-on", type=click.Choice(["error", "warning", SHORTFALL, "never"]), default="never",
+    show_default=True, help="Exit with status 1 when any file has an issue of this severity or "
+                            "worse. " + _SHORTFALL_HELP)
 
 
 def _progress(quiet: bool):
@@ -224,15 +235,19 @@ def group(manifest_path, force, quiet, **chosen):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
+@_fail_on_split
 @_force
 @_quiet
-def split(manifest_path, force, quiet, **chosen):
+def split(manifest_path, fail_on, force, quiet, **chosen):
     """Assign train/val/test so that no cluster or group spans two splits.
 
     Two ratios mean train,test. With --folds K the split holds train and test and every train
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
-    path) keep their split and only new files are placed.
+    path) keep their split and only new files are placed. When the bundles (clusters joined
+    with groups) make a ratio or a class unreachable, it says why and which files bridge them.
     """
+    from .reports.split_findings import warning_lines
+    from .split_diagnosis import diagnose_split
     from .splits import split as run, split_summary
 
     old = _read(chosen["keep_from"]) if chosen["keep_from"] is not None else None
@@ -245,9 +260,18 @@ def split(manifest_path, force, quiet, **chosen):
     if old is not None:
         _say(quiet, f"kept {summary['kept']} files where they were, placed {summary['placed']} new, "
                     f"moved {summary['moved']}, dropped {summary['dropped']} (now with an error)")
-    for name, labels in summary["missing"].items():
-        _say(quiet, f"warning: {name} has no file of class {', '.join(labels)} "
-                    "(too few groups or clusters to reach every split)", err=True)
+    findings = diagnose_split(m, ratios=chosen["ratios"], folds=chosen["folds"])
+    for line in warning_lines(findings):
+        _say(quiet, line, err=True)
+    _gate_split(findings, fail_on)
+
+
+def _gate_split(findings, fail_on: str):
+    from .errors import GateFailed
+
+    if fail_on == SHORTFALL and findings is not None and not findings["reached"]:
+        raise GateFailed(f"--fail-on {SHORTFALL}: the split misses its targets "
+                         f"(cause: {findings['cause']})")
 
 
 @main.command()
@@ -337,7 +361,7 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @click.option("--out", "out", required=True, type=click.Path(file_okay=False, path_type=Path),
               metavar="DIR", help="Folder for manifest.csv, report.json and report.html.")
 @options.click_options(*options.STAGES)
-@_fail_on
+@_fail_on_prepare
 @_force
 @_quiet
 def prepare(roots, out, fail_on, quiet, **chosen):
@@ -350,7 +374,10 @@ def prepare(roots, out, fail_on, quiet, **chosen):
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, progress=_progress(quiet), **chosen)
     _print_outcome(m, summary, out, quiet, options.for_stage("check", chosen))
-    _gate(m, fail_on)
+    if fail_on == SHORTFALL:
+        _gate_split(summary["split_diagnosis"], fail_on)
+    else:
+        _gate(m, fail_on)
 
 
 def _print_outcome(m, summary, out: Path, quiet: bool, checked: dict):
