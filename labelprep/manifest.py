@@ -281,10 +281,22 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
     if partitions is not None:
         check_partitions(partitions, path)
     guard_output(path, force=force)
-    # the sidecar first: a manifest is known as labelprep's by its sidecar (guard_output), so an
-    # interrupt between the two writes must leave a sidecar without its new manifest, never a
-    # new manifest that a rerun would refuse to replace
+    # the sidecar first: a manifest is known as labelprep's by its sidecar (guard_output), so no
+    # interrupt may leave a new manifest without one (a rerun would refuse to replace it); if the
+    # manifest then fails, the old sidecar is put back, so a failed write changes nothing
+    side = sidecar_path(path)
+    old_side = side.read_bytes() if side.is_file() else None
     write_sidecar(path, meta or {}, merge=not new_sidecar)
+    try:
+        _write_rows(df, path, partitions)
+    except BaseException:
+        _put_back(side, old_side)
+        raise
+    return path
+
+
+def _write_rows(df, path: Path, partitions) -> None:
+    """The manifest's own file (or part files), then its scan cache."""
     cached = [c for c in CACHE_COLUMNS if c in df.columns]
     if partitions is not None:
         _write_parts(df, path, partitions)
@@ -305,7 +317,15 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
         data = _csv_bytes(df[["path", "sha256", *cached]])
         with atomic_path(cache_path(path)) as tmp:
             Path(tmp).write_bytes(data)
-    return path
+
+
+def _put_back(side: Path, old) -> None:
+    """Restore a sidecar's earlier bytes (``None``: there was none)."""
+    if old is None:
+        side.unlink(missing_ok=True)
+        return
+    with atomic_path(side) as tmp:
+        Path(tmp).write_bytes(old)
 
 
 def guard_output(path, *, force: bool) -> None:

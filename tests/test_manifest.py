@@ -147,3 +147,20 @@ def test_an_interrupted_first_write_leaves_nothing_a_rerun_refuses(tmp_path, mon
     assert not target.exists() or manifest.sidecar_path(target).exists()
     manifest.write(_sample(), target)
     assert manifest.read(target)["path"].tolist() == _sample()["path"].tolist()
+
+
+def test_a_failed_rewrite_changes_nothing(tmp_path, monkeypatch):
+    """The sidecar goes first, so a manifest is never without one; if the manifest itself then
+    fails (a full disk, Ctrl-C), the old sidecar is put back: manifest and sidecar as they were."""
+    target = tmp_path / "m.csv"
+    manifest.write(_sample(), target, meta={"seed": 1})
+    before = {p.name: p.read_bytes() for p in tmp_path.iterdir()}
+
+    def interrupted(df):
+        raise KeyboardInterrupt
+
+    with monkeypatch.context() as mp:
+        mp.setattr(manifest, "to_csv_bytes", interrupted)
+        with pytest.raises(KeyboardInterrupt):
+            manifest.write(_sample().head(2), target, meta={"seed": 2}, new_sidecar=True)
+    assert {p.name: p.read_bytes() for p in tmp_path.iterdir()} == before
