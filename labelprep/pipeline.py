@@ -38,7 +38,7 @@ def prepare(root, out, *, force=False, progress=None, **options):
     from . import manifest
     from .checks import check
     from .reports import report
-    from .scanner import journal_path, previous_manifest, scan
+    from .scanner import resuming, scan
     from .sources import describe, name_roots, roots_of
     from .splits import split
 
@@ -51,21 +51,19 @@ def prepare(root, out, *, force=False, progress=None, **options):
     target = out / MANIFEST_NAME
     for path in (target, out / REPORT_JSON, out / REPORT_HTML):  # refuse before the work, not after it
         manifest.guard_output(path, force=force)
-    previous = previous_manifest(target, root=root, max_pixels=chosen["max_pixels"])
-    journal = journal_path(target)
     keep_from = chosen["keep_from"]
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
 
-    m = scan(root, previous=previous, journal=journal, progress=progress, **spec.for_stage("scan", chosen))
-    scan_facts = m.attrs.get("scan", {})
-    m = check(m, **spec.for_stage("check", chosen))
-    m, feature_facts = _group_and_vet(m, roots_of(where), target, chosen, progress)
-    m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
-    meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts,
-                                    features=feature_facts, vet=m.attrs.get("vet", {}))}
-    manifest.write(m, target, meta=meta, force=True)
-    journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
+    with resuming(target, root=root, max_pixels=chosen["max_pixels"]) as (previous, journal):
+        m, scan_facts = scan(root, previous=previous, journal=journal, progress=progress, return_facts=True,
+                             **spec.for_stage("scan", chosen))
+        m = check(m, **spec.for_stage("check", chosen))
+        m, feature_facts, vet_facts = _group_and_vet(m, roots_of(where), target, chosen, progress)
+        m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
+        meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts,
+                                        features=feature_facts, vet=vet_facts)}
+        manifest.write(m, target, meta=meta, force=True, new_sidecar=True)
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
                      meta=manifest.read_sidecar(target), force=force)
     return m, summary
@@ -74,7 +72,7 @@ def prepare(root, out, *, force=False, progress=None, **options):
 def _group_and_vet(m, root, manifest_path, chosen, progress):
     """group then vet, with the learned features (computed once, cached beside the manifest)
     when they are asked or installed: the same-scene links join the clusters, and the votes may
-    use the embeddings. Returns the manifest and the features' facts."""
+    use the embeddings. Returns the manifest, the features' facts and the vet's."""
     from .clusters import group
     from .embedding import cache_path, features_for
     from .labelcheck import vet
@@ -89,4 +87,4 @@ def _group_and_vet(m, root, manifest_path, chosen, progress):
                             cluster=chosen["cluster"], seed=chosen["seed"], progress=progress)
     m = group(m, progress=progress, scene_links=links, **spec.for_stage("group", chosen))
     m = vet(m, embeddings=vectors, **spec.for_stage("vet", chosen))
-    return m, facts
+    return m, facts, m.attrs["vet"]
