@@ -150,7 +150,7 @@ SPEC = (
              "(EfficientNet-Lite0, needs labelprep[features]) on every image, 'sketch' uses the "
              "scan's 32x32 thumbnails (no model), 'auto' the CNN when installed.")),
     Option("features_model", ("features",), None, dict(
-        type=_existing_file, metavar="FILE",
+        type=click.Path(exists=True, file_okay=True, dir_okay=False, path_type=Path), metavar="FILE",
         help="Your own ONNX model instead (float32 NCHW RGB in 0-1 at its input size; its first "
              "output is the embedding).")),
     Option("neighbours", ("vet",), defaults.NEIGHBOURS, dict(
