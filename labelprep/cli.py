@@ -138,6 +138,30 @@ _fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "nev
                         help="Exit with status 1 when any file has an issue of this severity or worse.")
 
 
+_decisions = click.option(
+    "--decisions", "decisions", type=_existing_file, default=None, metavar="FILE",
+    help="Decisions file (CSV path,action,value,note: drop, relabel, separate, join, keep), as "
+         "written by `labelprep review`. Default: decisions.csv beside the manifest (in --out "
+         "for prepare), when it exists.")
+
+
+def _load_decisions(given, folder):
+    from .pipeline import load_decisions
+
+    return load_decisions(folder, given)
+
+
+def _tell_decisions(found: dict):
+    """Decisions that did not take effect, on stderr (never silent, also with --quiet)."""
+    for u in found["unknown"]:
+        click.echo(f"warning: decisions line {u['line']}: {u['action']} names "
+                   f"{u['path']!r}{' and ' + repr(u['value']) if u['value'] else ''}, "
+                   "not in the manifest; not applied", err=True)
+    for a, b in found["still_joined"]:
+        click.echo(f"warning: {a!r} and {b!r} are separated but other links keep them in one "
+                   "cluster; separate them from those files too", err=True)
+
+
 def _progress(quiet: bool):
     from .progress import terminal
 
@@ -273,15 +297,25 @@ def check(manifest_path, fail_on, quiet, **limits):
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @GROUP_OPTIONS
 @_cluster
+@_decisions
 @_quiet
-def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
-    """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""
-    from .clusters import group as run
+def group(manifest_path, max_distance, keep_conflicts, flips, cluster, decisions, quiet):
+    """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns).
 
-    m = run(_read(manifest_path), max_distance=max_distance, keep_conflicts=keep_conflicts,
-            flips=flips, progress=_progress(quiet), cluster=cluster)
+    The decisions file is honoured: separate and join change the links, drop, relabel and keep
+    the rows (decided column).
+    """
+    from .clusters import group as run
+    from .decisions import apply, digest_of, findings
+
+    chosen = _load_decisions(decisions, manifest_path.parent)
+    m = apply(run(apply(_read(manifest_path), chosen), max_distance=max_distance,
+                  keep_conflicts=keep_conflicts, flips=flips, progress=_progress(quiet),
+                  cluster=cluster, decisions=chosen), chosen)
     _write_back(m, manifest_path, "group", {"max_distance": max_distance,
-                                            "keep_conflicts": keep_conflicts, "flips": flips})
+                                            "keep_conflicts": keep_conflicts, "flips": flips,
+                                            "decisions": digest_of(chosen)})
+    _tell_decisions(findings(m, chosen))
     in_clusters = int(m["dup_group"].notna().sum())
     _say(quiet, f"{m['dup_group'].nunique()} near-duplicate clusters holding {in_clusters} files")
 
@@ -289,21 +323,33 @@ def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
+@_decisions
 @_quiet
-def split(manifest_path, ratios, seed, folds, keep_from, quiet):
+def split(manifest_path, ratios, seed, folds, keep_from, decisions, quiet):
     """Assign train/val/test so that no cluster or group spans two splits.
 
     Two ratios mean train,test. With --folds K the split holds train and test and every train
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
-    path) keep their split and only new files are placed.
+    path) keep their split and only new files are placed. The decisions file's drop, relabel
+    and keep rows are honoured; its separate and join rows act in group.
     """
+    from .decisions import PAIR_ACTIONS, apply, digest_of, findings
+    from .manifest import read_sidecar
     from .splits import split as run, split_summary
 
     old = _read(keep_from) if keep_from is not None else None
-    m = run(_read(manifest_path), ratios=ratios, seed=seed, folds=folds, keep_from=old,
-            progress=_progress(quiet))
+    chosen = _load_decisions(decisions, manifest_path.parent)
+    m = apply(run(apply(_read(manifest_path), chosen), ratios=ratios, seed=seed, folds=folds,
+                  keep_from=old, progress=_progress(quiet)), chosen)
+    stages = read_sidecar(manifest_path).get("stages", {})
+    grouped = (stages.get("group", {}).get("options", {}).get("decisions")
+               or stages.get("prepare", {}).get("decisions") or {})
+    if chosen["action"].isin(PAIR_ACTIONS).any() and grouped.get("sha256") != chosen.attrs.get("sha256"):
+        click.echo("warning: the decisions file has separate/join rows that group has not seen; "
+                   "run labelprep group first for them to take effect", err=True)
     _write_back(m, manifest_path, "split", {"ratios": list(ratios), "seed": seed, "folds": folds,
-                                            "keep_from": keep_from})
+                                            "keep_from": keep_from, "decisions": digest_of(chosen)})
+    _tell_decisions(findings(m, chosen))
     summary = split_summary(m, keep_from=old)
     sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
@@ -324,17 +370,28 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
               help="Write a self-contained HTML report with thumbnails.")
 @click.option("--root", type=_existing_dir, default=None,
               help="Folder the manifest's paths are relative to (default: from the manifest's sidecar).")
+@_decisions
 @_force
 @_quiet
-def report(manifest_path, json_path, md_path, html_path, root, force, quiet):
-    """Class balance per split, issues and duplicate clusters of MANIFEST."""
+def report(manifest_path, json_path, md_path, html_path, root, decisions, force, quiet):
+    """Class balance per split, issues and duplicate clusters of MANIFEST.
+
+    The decisions file's drop, relabel and keep rows are shown applied; the report lists
+    decisions naming files the manifest lacks.
+    """
+    from .decisions import apply, digest_of, findings
     from .manifest import read_sidecar
     from .reports import report as run, terminal_table
 
     meta = read_sidecar(manifest_path)
     root = root or _root_from(meta)
-    summary = run(_read(manifest_path), json=json_path, html=html_path, markdown=md_path,
-                  root=root, meta=meta, force=force)
+    chosen = _load_decisions(decisions, manifest_path.parent)
+    m = apply(_read(manifest_path), chosen)
+    found = findings(m, chosen)
+    summary = run(m, json=json_path, html=html_path, markdown=md_path, root=root, meta=meta,
+                  force=force, decisions={**digest_of(chosen), **found} if len(chosen) else None,
+                  review=manifest_path.parent)
+    _tell_decisions(found)
     _say(quiet, terminal_table(summary))
 
 
@@ -418,6 +475,7 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @GROUP_OPTIONS
 @SPLIT_OPTIONS
 @_cluster
+@_decisions
 @_fail_on
 @_force
 @_quiet
@@ -431,6 +489,7 @@ def prepare(roots, out, fail_on, quiet, labels, **options):
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, labels=_labels(labels), progress=_progress(quiet), **options)
     _print_outcome(m, summary, out, quiet)
+    _tell_decisions(summary["decisions"])
     _gate(m, fail_on)
 
 
@@ -442,6 +501,38 @@ def _print_outcome(m, summary, out: Path, quiet: bool):
     _say(quiet, "\nissues, with the first three files each (the manifest lists them all):")
     _print_issues(m, quiet)
     _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
+
+
+@main.command()
+@click.argument("folder", metavar="DIR", type=_existing_dir)
+@click.option("--decisions", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              metavar="FILE", help="Decisions file the page writes (default: DIR/decisions.csv).")
+@click.option("--port", type=click.IntRange(0, 65535), default=0, show_default=True,
+              help="Port on 127.0.0.1; 0 picks a free one.")
+@click.option("--no-browser", is_flag=True, help="Print the address only; do not open a browser.")
+def review(folder, decisions, port, no_browser):
+    """Review what needs a human in a prepare folder DIR, on a local page, and record decisions.
+
+    Serves a page on 127.0.0.1 (address printed with a one-time token) showing every
+    near-duplicate cluster, label conflict and flagged file, a page at a time. Keys decide:
+    d drop, r relabel, s separate, m/j join, k keep, u undo, Shift+R re-runs group, split and
+    report. Each decision is written to the decisions file at once. Ctrl-C stops the server.
+    """
+    from .reviews import make_server
+
+    server = make_server(folder, decisions=decisions, port=port)
+    click.echo(f"review page: {server.url}")
+    click.echo(f"decisions go to {server.decisions_path}; Ctrl-C stops")
+    if not no_browser:
+        import webbrowser
+
+        webbrowser.open(server.url)
+    try:
+        server.serve_forever()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        server.server_close()
 
 
 @main.command()

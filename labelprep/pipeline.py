@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from . import defaults
+from .decisions import digest_of, findings
 from .errors import InputError
 
 MANIFEST_NAME = "manifest.csv"
@@ -17,7 +18,8 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
             jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
             max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
             max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=False, ratios=defaults.RATIOS,
-            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None):
+            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None,
+            decisions=None):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 
     ``root`` is a folder, an archive or a list of them (several sources, see
@@ -25,7 +27,8 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     are not decoded again. Options are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
     :func:`~labelprep.group` and :func:`~labelprep.split`; ``keep_from`` is a manifest path or
     DataFrame whose split is kept. ``cluster`` (a Dask scheduler address) decodes the files on
-    that cluster's workers, as in :func:`~labelprep.scan`.
+    that cluster's workers, as in :func:`~labelprep.scan`. ``decisions`` is a decisions file
+    (:mod:`labelprep.decisions`); by default ``out/decisions.csv`` when it exists.
 
     Returns
     -------
@@ -58,6 +61,7 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     journal = journal_path(target)
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
+    chosen = load_decisions(out, decisions)
 
     m = scan(root, layout=layout, labels=labels, group_pattern=group_pattern,
              group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
@@ -65,9 +69,10 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     scan_facts = m.attrs.get("scan", {})
     m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
               min_spread=min_spread)
-    m = group(m, max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips,
-              progress=progress, cluster=cluster)
-    m = split(m, ratios=ratios, seed=seed, folds=folds, keep_from=keep_from, progress=progress)
+    m = group_and_split(m, chosen, group_options=dict(
+        max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips, progress=progress,
+        cluster=cluster), split_options=dict(ratios=ratios, seed=seed, folds=folds,
+                                              keep_from=keep_from, progress=progress))
     options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,
                "max_aspect": max_aspect, "min_spread": min_spread,
@@ -76,10 +81,64 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     if group_by_source:
         options["group_by_source"] = True
     meta = {**where, "seed": seed,
-            "stages": {"prepare": {"options": options, "scan": scan_facts}}}
+            "stages": {"prepare": {"options": options, "scan": scan_facts,
+                                   "decisions": digest_of(chosen)}}}
     manifest.write(m, target, meta=meta, force=True)
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
-                     meta=manifest.read_sidecar(target), force=force)
+                     meta=manifest.read_sidecar(target), force=force,
+                     decisions={**digest_of(chosen), **findings(m, chosen)}, review=out)
+    return m, summary
+
+
+def load_decisions(folder, decisions=None):
+    """The decisions table a run in ``folder`` honours: the file ``decisions`` (which must
+    exist), else ``folder/decisions.csv`` when it exists (else no decision)."""
+    from .decisions import FILE_NAME, load
+
+    if decisions is not None:
+        return load(decisions)
+    return load(Path(folder) / FILE_NAME, required=False)
+
+
+def group_and_split(m, decisions, *, group_options: dict, split_options: dict):
+    """The group and split stages with ``decisions`` honoured: row decisions before each stage
+    (a relabel changes conflicts and strata) and after it (a keep mutes the codes it found),
+    pair decisions inside group."""
+    from .clusters import group
+    from .decisions import apply
+    from .splits import split
+
+    m = apply(group(apply(m, decisions), decisions=decisions, **group_options), decisions)
+    return apply(split(m, **split_options), decisions)
+
+
+def rerun(out, *, decisions=None, progress=None):
+    """Group, split and report the manifest of a ``prepare`` folder ``out`` again, with the
+    options its sidecar records and the decisions file as it is now; no file is decoded again.
+
+    The review page calls this after decisions change. Returns what :func:`prepare` returns.
+    """
+    from . import manifest
+    from .reports import report
+    from .sources import roots_of
+
+    out = Path(out)
+    target = out / MANIFEST_NAME
+    meta = manifest.read_sidecar(target)
+    recorded = meta.get("stages", {}).get("prepare", {}).get("options")
+    if recorded is None:
+        raise InputError(f"{target} was not written by prepare (its sidecar records no prepare options)")
+    chosen = load_decisions(out, decisions)
+    m = group_and_split(manifest.read(target), chosen, group_options=dict(
+        max_distance=recorded["max_distance"], keep_conflicts=recorded["keep_conflicts"],
+        flips=recorded["flips"], progress=progress), split_options=dict(
+        ratios=tuple(recorded["ratios"]), seed=recorded["seed"], folds=recorded["folds"],
+        progress=progress))
+    prepare_stage = {**meta["stages"]["prepare"], "decisions": digest_of(chosen)}
+    manifest.write(m, target, meta={"stages": {"prepare": prepare_stage}}, force=True)
+    summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(meta),
+                     meta=manifest.read_sidecar(target), force=True,
+                     decisions={**digest_of(chosen), **findings(m, chosen)}, review=out)
     return m, summary
 

@@ -18,7 +18,7 @@ FORMAT_TAG = "labelprep-report/1"
 
 
 def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=None,
-           force: bool = False) -> dict:
+           force: bool = False, decisions=None, review=None) -> dict:
     """Summarise ``manifest`` and write the report files that are asked for.
 
     Parameters
@@ -38,6 +38,12 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     force : bool
         Replace output files that labelprep did not write (reports are recognised by the word
         "labelprep" near their start).
+    decisions : dict, optional
+        What applying the decisions file gave (:func:`labelprep.decisions.digest_of` merged with
+        :func:`labelprep.decisions.findings`); recorded as ``summary["decisions"]`` and shown.
+    review : str or Path, optional
+        The output folder to name in ``labelprep review DIR`` where the HTML page leaves
+        thumbnails out to stay within its size budget.
 
     Returns
     -------
@@ -76,6 +82,8 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
             guard_output(target, force=force, marker=b"labelprep")
     m = _complete(manifest)
     summary = _summary(m, meta or {})
+    if decisions is not None:
+        summary["decisions"] = _jsonable(decisions)
 
     if json is not None:
         write_text(json, to_json(summary))
@@ -86,7 +94,7 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     if html is not None:
         from .page import render
 
-        write_text(html, render(m, summary, root=root))
+        write_text(html, render(m, summary, root=root, review=review))
     return summary
 
 
