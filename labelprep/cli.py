@@ -154,9 +154,12 @@ def _load_decisions(given, folder):
 def _tell_decisions(found: dict):
     """Decisions that did not take effect, on stderr (never silent, also with --quiet)."""
     for u in found["unknown"]:
-        click.echo(f"warning: decisions line {u['line']}: {u['action']} names "
-                   f"{u['path']!r}{' and ' + repr(u['value']) if u['value'] else ''}, "
-                   "not in the manifest; not applied", err=True)
+        if u["action"] in ("separate", "join"):
+            named = f"{u['path']!r} and {u['value']!r}, one of them not in the manifest"
+        else:
+            named = f"{u['path']!r}, not in the manifest"
+        click.echo(f"warning: decisions line {u['line']}: {u['action']} names {named}; not applied",
+                   err=True)
     for a, b in found["still_joined"]:
         click.echo(f"warning: {a!r} and {b!r} are separated but other links keep them in one "
                    "cluster; separate them from those files too", err=True)
