@@ -52,6 +52,12 @@ class ReviewServer(ThreadingHTTPServer):
         self.lock = threading.Lock()
         self.load()
 
+    def handle_error(self, request, client_address):
+        import sys
+
+        if not isinstance(sys.exc_info()[1], ConnectionError):  # a closed tab is no error
+            super().handle_error(request, client_address)
+
     @property
     def port(self) -> int:
         return self.server_address[1]
