@@ -34,7 +34,8 @@ TOKEN_HEADER = "X-Review-Token"
 MAX_BODY = 64 * 1024
 THUMB_SIDE = 240
 FULL_SIDE = 4096  # full-size previews are re-encoded, bounded so a huge scan cannot exhaust memory
-ASSETS = {"review.js": "text/javascript; charset=utf-8", "review.css": "text/css; charset=utf-8"}
+ASSETS = {"review.js": "text/javascript; charset=utf-8", "review.css": "text/css; charset=utf-8",
+          "icon.svg": "image/svg+xml"}
 POLICY = ("default-src 'none'; script-src 'self'; style-src 'self'; img-src 'self'; "
           "connect-src 'self'; frame-ancestors 'none'; base-uri 'none'; form-action 'none'")
 

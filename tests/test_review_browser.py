@@ -1,0 +1,155 @@
+"""The review page driven with the keyboard in a real headless Chromium (Debian's chromium with
+chromium-driver, through selenium): decide, undo, re-run, and check the decisions file and the
+re-run manifest; screenshots at phone and desktop width."""
+
+from __future__ import annotations
+
+import shutil
+import threading
+import time
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from labelprep import decisions, manifest
+from labelprep.pipeline import prepare
+from labelprep.reviews import make_server
+from test_report_browser import BROWSER, FLAGS
+from test_review_server import make_tree
+
+pytestmark = pytest.mark.browser
+
+DRIVER = shutil.which("chromedriver") or shutil.which("chromium-driver")
+try:
+    from selenium import webdriver
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+except ImportError:  # the test extra installs it
+    webdriver = None
+needs_driver = pytest.mark.skipif(
+    BROWSER is None or DRIVER is None or webdriver is None,
+    reason="needs Chromium, chromedriver (Debian: apt-get install -y chromium chromium-driver) and "
+           "selenium (pip install -e '.[test]'); the page was not driven")
+
+
+@pytest.fixture
+def page(tmp_path):
+    out = tmp_path / "out"
+    prepare(make_tree(tmp_path / "photos"), out, jobs=1, seed=1)
+    server = make_server(out)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    options = webdriver.ChromeOptions()
+    options.binary_location = BROWSER
+    for flag in FLAGS:
+        if not flag.startswith(("--enable-logging", "--v=")):
+            options.add_argument(flag)
+    options.add_argument(f"--user-data-dir={tmp_path / 'profile'}")
+    options.add_argument("--window-size=1200,900")
+    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
+    driver = webdriver.Chrome(options=options, service=webdriver.ChromeService(executable_path=DRIVER))
+    try:
+        driver.get(server.url)
+        wait_for(driver, lambda d: "ready" in d.find_element(By.ID, "status").text)
+        yield driver, server
+    finally:
+        driver.quit()
+        server.shutdown()
+        server.server_close()
+
+
+def wait_for(driver, condition, timeout=30.0):
+    """Poll ``condition(driver)`` until true; generous, as the machine may be loaded."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        try:
+            if condition(driver):
+                return
+        except Exception:  # noqa: BLE001 - the page may be re-rendering between two reads
+            pass
+        time.sleep(0.1)
+    raise AssertionError(f"page never reached the state; status: {driver.find_element(By.ID, 'status').text}")
+
+
+def press(driver, *keys):
+    body = driver.find_element(By.TAG_NAME, "body")
+    for key in keys:
+        body.send_keys(key)
+
+
+def current_path(driver):
+    return driver.find_element(By.CSS_SELECTOR, "figure.current .path").text
+
+
+def saved(driver, count):
+    wait_for(driver, lambda d: f"({count} decisions in the file)" in d.find_element(By.ID, "status").text
+             or (count == 0 and "undone" in d.find_element(By.ID, "status").text))
+
+
+@needs_driver
+def test_decide_with_the_keyboard_then_rerun(page):
+    """Arrows move, one key decides, u undoes; the file holds each decision at once; Shift+R
+    re-runs the stages and the manifest shows the decisions' effect."""
+    driver, server = page
+    assert driver.find_element(By.CSS_SELECTOR, '[data-count="clusters"]').text == "2"
+    # the first cluster is the label conflict cat/c.jpg + dog/c.jpg, kept file first
+    press(driver, Keys.ARROW_RIGHT)
+    other = current_path(driver)
+    assert other in ("cat/c.jpg", "dog/c.jpg")
+    press(driver, "r")
+    field = driver.find_element(By.ID, "relabel-input")
+    wait_for(driver, lambda d: field.is_displayed())
+    field.send_keys(Keys.CONTROL, "a")
+    field.send_keys("cat" if other.startswith("dog") else "dog", Keys.ENTER)
+    saved(driver, 1)
+    assert decisions.load(server.decisions_path)[["path", "action"]].values.tolist() == [[other, "relabel"]]
+
+    press(driver, Keys.ARROW_DOWN, Keys.ARROW_RIGHT)  # the byte-copy cluster, its second file
+    copy = current_path(driver)
+    press(driver, "s")
+    saved(driver, 2)
+    press(driver, "d")
+    saved(driver, 3)
+    press(driver, "u")  # undo the drop
+    wait_for(driver, lambda d: len(decisions.load(server.decisions_path)) == 2)
+    assert sorted(decisions.load(server.decisions_path)["action"]) == ["relabel", "separate"]
+
+    press(driver, "3")  # flagged files: the tiny one
+    wait_for(driver, lambda d: current_path(d) == "dog/tiny.jpg")
+    press(driver, "d")
+    saved(driver, 3)
+    badge = driver.find_element(By.CSS_SELECTOR, "figure.current [data-decision='drop']")
+    assert badge.text == "drop"
+
+    press(driver, Keys.SHIFT + "R")
+    wait_for(driver, lambda d: "re-ran group, split and report" in d.find_element(By.ID, "status").text, 120)
+    m = manifest.read(server.folder / "manifest.csv").set_index("path")
+    assert m.loc["dog/tiny.jpg", "decided"] == "drop" and m.loc["dog/tiny.jpg", "split"] == ""
+    assert m.loc[other, "decided"] == "relabel" and m.loc[other, "label_original"] != m.loc[other, "label"]
+    assert m.loc[copy, "decided"] == "separate"
+    assert m.loc[["cat/a.jpg", "cat/b.jpg"], "dup_group"].isna().all()
+    # the conflict is resolved, so the page refreshed to no conflict and one cluster
+    wait_for(driver, lambda d: d.find_element(By.CSS_SELECTOR, '[data-count="conflicts"]').text == "0")
+    assert driver.find_element(By.CSS_SELECTOR, '[data-count="clusters"]').text == "1"
+    errors = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
+    assert errors == []
+
+
+@needs_driver
+@pytest.mark.parametrize("width", [390, 1200])
+def test_screenshots(page, width, tmp_path):
+    """Phone and desktop widths: the page draws thumbnails and text, nothing runs off the side."""
+    driver, _ = page
+    driver.set_window_size(width, 900)
+    wait_for(driver, lambda d: d.execute_script(
+        "return [...document.images].filter(i => i.complete && i.naturalWidth > 0).length") >= 2)
+    overflow = driver.execute_script("return document.documentElement.scrollWidth - window.innerWidth")
+    assert overflow <= 0
+    shot = tmp_path / f"review-{width}.png"
+    driver.save_screenshot(str(shot))
+    with Image.open(shot) as im:
+        pixels = np.asarray(im.convert("RGB"), dtype=float)
+    assert pixels.std() > 10  # a blank or failed render is one flat colour
+    colourful = (pixels.max(axis=2) - pixels.min(axis=2)) > 60
+    assert colourful.mean() > 0.01  # the thumbnails are coloured textures
