@@ -9,6 +9,7 @@ import threading
 import time
 
 import numpy as np
+import pandas as pd
 import pytest
 from PIL import Image
 
@@ -83,27 +84,33 @@ def current_path(driver):
 
 
 def saved(driver, count):
-    wait_for(driver, lambda d: f"({count} decisions in the file)" in d.find_element(By.ID, "status").text
-             or (count == 0 and "undone" in d.find_element(By.ID, "status").text))
+    """Wait until the page says the decision is saved (it redraws before it says so)."""
+    wait_for(driver, lambda d: f"({count} decisions in the file)" in d.find_element(By.ID, "status").text)
 
 
 @needs_driver
-def test_decide_with_the_keyboard_then_rerun(page):
+def test_decide_with_the_keyboard_then_rerun(page, tmp_path):
     """Arrows move, one key decides, u undoes; the file holds each decision at once; Shift+R
-    re-runs the stages and the manifest shows the decisions' effect."""
+    re-runs the stages and the manifest shows each decision's effect, byte for byte what
+    prepare gives with the same decisions written by hand."""
     driver, server = page
     assert driver.find_element(By.CSS_SELECTOR, '[data-count="clusters"]').text == "2"
+    press(driver, "/")
+    driver.find_element(By.ID, "note").send_keys("same pool", Keys.ESCAPE)
     # the first cluster is the label conflict cat/c.jpg + dog/c.jpg, kept file first
     press(driver, Keys.ARROW_RIGHT)
     other = current_path(driver)
     assert other in ("cat/c.jpg", "dog/c.jpg")
+    new_label = "cat" if other.startswith("dog") else "dog"
     press(driver, "r")
     field = driver.find_element(By.ID, "relabel-input")
     wait_for(driver, lambda d: field.is_displayed())
     field.send_keys(Keys.CONTROL, "a")
-    field.send_keys("cat" if other.startswith("dog") else "dog", Keys.ENTER)
+    field.send_keys(new_label, Keys.ENTER)
     saved(driver, 1)
-    assert decisions.load(server.decisions_path)[["path", "action"]].values.tolist() == [[other, "relabel"]]
+    assert decisions.load(server.decisions_path)[["path", "action", "value", "note"]].values.tolist() == [
+        [other, "relabel", new_label, "same pool"]]
+    press(driver, "m")  # mark it, to join a file of the next cluster with it
 
     press(driver, Keys.ARROW_DOWN, Keys.ARROW_RIGHT)  # the byte-copy cluster, its second file
     copy = current_path(driver)
@@ -112,28 +119,46 @@ def test_decide_with_the_keyboard_then_rerun(page):
     press(driver, "d")
     saved(driver, 3)
     press(driver, "u")  # undo the drop
-    wait_for(driver, lambda d: len(decisions.load(server.decisions_path)) == 2)
+    wait_for(driver, lambda d: d.find_element(By.ID, "status").text == "undone: drop")
     assert sorted(decisions.load(server.decisions_path)["action"]) == ["relabel", "separate"]
+    press(driver, "j")  # join the copy with the marked file
+    saved(driver, 3)
+    press(driver, Keys.ARROW_LEFT)
+    kept = current_path(driver)
+    press(driver, "k")
+    saved(driver, 4)
 
     press(driver, "3")  # flagged files: the tiny one
     wait_for(driver, lambda d: current_path(d) == "dog/tiny.jpg")
     press(driver, "d")
-    saved(driver, 3)
-    badge = driver.find_element(By.CSS_SELECTOR, "figure.current [data-decision='drop']")
-    assert badge.text == "drop"
+    saved(driver, 5)
+    assert driver.find_element(By.CSS_SELECTOR, "figure.current [data-decision='drop']").text == "drop"
+    press(driver, "f")  # the full-size preview, at the file's own 16x16 pixels
+    wait_for(driver, lambda d: d.execute_script(
+        "const i = document.getElementById('full-img'); return i.complete && i.naturalWidth") == 16)
+    press(driver, Keys.ESCAPE)
+    assert not driver.find_element(By.ID, "full").is_displayed()
 
     press(driver, Keys.SHIFT + "R")
     wait_for(driver, lambda d: "re-ran group, split and report" in d.find_element(By.ID, "status").text, 120)
     m = manifest.read(server.folder / "manifest.csv").set_index("path")
     assert m.loc["dog/tiny.jpg", "decided"] == "drop" and m.loc["dog/tiny.jpg", "split"] == ""
-    assert m.loc[other, "decided"] == "relabel" and m.loc[other, "label_original"] != m.loc[other, "label"]
-    assert m.loc[copy, "decided"] == "separate"
-    assert m.loc[["cat/a.jpg", "cat/b.jpg"], "dup_group"].isna().all()
-    # the conflict is resolved, so the page refreshed to no conflict and one cluster
+    assert (m.loc[other, "label"], m.loc[other, "label_original"]) == (new_label, other.split("/")[0])
+    assert m.loc[copy, "decided"] == "separate;join" and m.loc[kept, "decided"] == "separate;keep"
+    assert m.loc[kept, "muted"] == "exact-copy" and pd.isna(m.loc[kept, "dup_group"])
+    assert m.loc[copy, "dup_group"] == m.loc[other, "dup_group"]
+    # the conflict is resolved and the copies parted: the page refreshed to one cluster, no conflict
     wait_for(driver, lambda d: d.find_element(By.CSS_SELECTOR, '[data-count="conflicts"]').text == "0")
     assert driver.find_element(By.CSS_SELECTOR, '[data-count="clusters"]').text == "1"
-    errors = [e for e in driver.get_log("browser") if e["level"] == "SEVERE"]
-    assert errors == []
+    assert [e for e in driver.get_log("browser") if e["level"] == "SEVERE"] == []
+
+    hand = tmp_path / "by-hand.csv"
+    hand.write_text("path,action,value,note\n"
+                    f"dog/tiny.jpg,drop,,same pool\n{kept},keep,,same pool\n"
+                    f"{other},relabel,{new_label},same pool\n{kept},separate,{copy},same pool\n"
+                    f"{other},join,{copy},same pool\n")
+    prepare(server.roots, tmp_path / "by-hand", jobs=1, seed=1, decisions=hand)
+    assert (tmp_path / "by-hand" / "manifest.csv").read_bytes() == (server.folder / "manifest.csv").read_bytes()
 
 
 @needs_driver

@@ -119,8 +119,8 @@
     state.busy = true;
     return api("/api/decide", change).then((r) => {
       state.undo.push({ change, previous: r.previous });
-      say(`${label}: saved (${r.decisions} decisions in the file)`);
-      return load(true);
+      // the page is redrawn before it says so, so a key pressed after the message acts on it
+      return load(true).then(() => say(`${label}: saved (${r.decisions} decisions in the file)`));
     }).catch((e) => say(`not saved: ${e.message}`)).finally(() => { state.busy = false; });
   }
 
@@ -148,7 +148,7 @@
     if (previous) back = { ...change, value: previous.value, note: previous.note, remove: false };
     else back = { ...change, remove: !change.remove };
     state.busy = true;
-    api("/api/decide", back).then(() => { say(`undone: ${change.action}`); return load(true); })
+    api("/api/decide", back).then(() => load(true)).then(() => say(`undone: ${change.action}`))
       .catch((e) => say(`undo failed: ${e.message}`)).finally(() => { state.busy = false; });
   }
 
