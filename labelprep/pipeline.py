@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from . import defaults
+from . import options as spec
 from .decisions import digest_of, findings
 from .errors import InputError
 
@@ -13,22 +13,19 @@ REPORT_JSON = "report.json"
 REPORT_HTML = "report.html"
 
 
-def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_by_source=False,
-            include_hidden=False,
-            jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
-            max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
-            max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=False, ratios=defaults.RATIOS,
-            seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None,
-            decisions=None):
+def prepare(root, out, *, force=False, progress=None, decisions=None, **options):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 
     ``root`` is a folder, an archive or a list of them (several sources, see
     :mod:`labelprep.sources`). A manifest already in ``out`` from an earlier run is used as the rescan cache: unchanged files
-    are not decoded again. Options are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
-    :func:`~labelprep.group` and :func:`~labelprep.split`; ``keep_from`` is a manifest path or
-    DataFrame whose split is kept. ``cluster`` (a Dask scheduler address) decodes the files on
-    that cluster's workers, as in :func:`~labelprep.scan`. ``decisions`` is a decisions file
-    (:mod:`labelprep.decisions`); by default ``out/decisions.csv`` when it exists.
+    are not decoded again. ``options`` are those of :func:`~labelprep.scan`, :func:`~labelprep.check`,
+    :func:`~labelprep.group` and :func:`~labelprep.split`, as listed in :data:`labelprep.options.SPEC`
+    (an option left out takes its default; one that is not there raises ``TypeError``);
+    ``keep_from`` is a manifest path or DataFrame whose split is kept. ``cluster`` (a Dask
+    scheduler address) decodes the files on that cluster's workers, as in :func:`~labelprep.scan`.
+    The sidecar records every option that shapes the result (:func:`labelprep.options.record`).
+    ``decisions`` is a decisions file (:mod:`labelprep.decisions`); by default
+    ``out/decisions.csv`` when it exists. Its digest is recorded in the sidecar.
 
     Returns
     -------
@@ -42,52 +39,39 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
     """
     from . import manifest
     from .checks import check
-    from .clusters import group
     from .reports import report
     from .scanner import journal_path, previous_manifest, scan
     from .sources import describe, name_roots, roots_of
-    from .splits import split
 
+    chosen = spec.resolve(options, *spec.STAGES)
     out = Path(out)
     where = describe(name_roots(root))
     if out.exists() and not out.is_dir():
         raise InputError(f"--out {out} exists and is not a folder")
     out.mkdir(parents=True, exist_ok=True)
     target = out / MANIFEST_NAME
-    manifest.guard_output(target, force=force)
-    for name in (REPORT_JSON, REPORT_HTML):  # refuse before the work, not after it
-        manifest.guard_output(out / name, force=force, marker=b"labelprep")
-    previous = previous_manifest(target, root=root, max_pixels=max_pixels)
+    for path in (target, out / REPORT_JSON, out / REPORT_HTML):  # refuse before the work, not after it
+        manifest.guard_output(path, force=force)
+    previous = previous_manifest(target, root=root, max_pixels=chosen["max_pixels"])
     journal = journal_path(target)
+    keep_from = chosen["keep_from"]
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
-    chosen = load_decisions(out, decisions)
+    decided = load_decisions(out, decisions)
 
-    m = scan(root, layout=layout, labels=labels, group_pattern=group_pattern,
-             group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
-             previous=previous, journal=journal, progress=progress, cluster=cluster)
+    m = scan(root, previous=previous, journal=journal, progress=progress, **spec.for_stage("scan", chosen))
     scan_facts = m.attrs.get("scan", {})
-    m = check(m, min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
-              min_spread=min_spread)
-    m = group_and_split(m, chosen, group_options=dict(
-        max_distance=max_distance, keep_conflicts=keep_conflicts, flips=flips, progress=progress,
-        cluster=cluster), split_options=dict(ratios=ratios, seed=seed, folds=folds,
-                                              keep_from=keep_from, progress=progress))
-    options = {"layout": layout, "labels": labels, "group_pattern": group_pattern,
-               "include_hidden": include_hidden, "max_pixels": max_pixels, "min_side": min_side,
-               "max_aspect": max_aspect, "min_spread": min_spread,
-               "max_distance": max_distance, "keep_conflicts": keep_conflicts, "flips": flips,
-               "ratios": list(ratios), "seed": seed, "folds": folds}
-    if group_by_source:
-        options["group_by_source"] = True
-    meta = {**where, "seed": seed,
-            "stages": {"prepare": {"options": options, "scan": scan_facts,
-                                   "decisions": digest_of(chosen)}}}
+    m = check(m, **spec.for_stage("check", chosen))
+    m = group_and_split(m, decided, group_options={"progress": progress, **spec.for_stage("group", chosen)},
+                        split_options={"progress": progress, **spec.for_stage("split", chosen),
+                                       "keep_from": keep_from})
+    meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts,
+                                    decisions=digest_of(decided))}
     manifest.write(m, target, meta=meta, force=True)
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
                      meta=manifest.read_sidecar(target), force=force,
-                     decisions={**digest_of(chosen), **findings(m, chosen)}, review=out)
+                     decisions={**digest_of(decided), **findings(m, decided)}, review=out)
     return m, summary
 
 
@@ -130,15 +114,16 @@ def rerun(out, *, decisions=None, progress=None):
     if recorded is None:
         raise InputError(f"{target} was not written by prepare (its sidecar records no prepare options)")
     chosen = load_decisions(out, decisions)
-    m = group_and_split(manifest.read(target), chosen, group_options=dict(
-        max_distance=recorded["max_distance"], keep_conflicts=recorded["keep_conflicts"],
-        flips=recorded["flips"], progress=progress), split_options=dict(
-        ratios=tuple(recorded["ratios"]), seed=recorded["seed"], folds=recorded["folds"],
-        progress=progress))
+    split_options = spec.for_stage("split", recorded)
+    keep_from = split_options.pop("keep_from", None)
+    if isinstance(keep_from, str) and Path(keep_from).is_file():  # as prepare had it
+        split_options["keep_from"] = manifest.read(keep_from)
+    m = group_and_split(manifest.read(target), chosen,
+                        group_options={"progress": progress, **spec.for_stage("group", recorded)},
+                        split_options={"progress": progress, **split_options})
     prepare_stage = {**meta["stages"]["prepare"], "decisions": digest_of(chosen)}
     manifest.write(m, target, meta={"stages": {"prepare": prepare_stage}}, force=True)
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(meta),
                      meta=manifest.read_sidecar(target), force=True,
                      decisions={**digest_of(chosen), **findings(m, chosen)}, review=out)
     return m, summary
-

@@ -36,8 +36,8 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
         The manifest's sidecar (:func:`labelprep.manifest.read_sidecar`): the seed, root and stage
         options it records are shown.
     force : bool
-        Replace output files that labelprep did not write (reports are recognised by the word
-        "labelprep" near their start).
+        Replace output files that labelprep did not write (see
+        :func:`labelprep.manifest.guard_output`).
     decisions : dict, optional
         What applying the decisions file gave (:func:`labelprep.decisions.digest_of` merged with
         :func:`labelprep.decisions.findings`); recorded as ``summary["decisions"]`` and shown.
@@ -50,7 +50,8 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     dict
         The summary, JSON-able: ``format``, ``version``, ``files``, ``in_split``, ``left_out``,
         ``splits``, ``classes``, ``balance`` (:func:`labelprep.balance.by_split`), ``issues``,
-        ``near_duplicates``, ``seed``, ``root``, ``options``.
+        ``near_duplicates``, ``split_diagnosis`` (:func:`labelprep.split_diagnosis.diagnose_split`,
+        None before a split), ``seed``, ``root``, ``options``.
 
     Examples
     --------
@@ -79,22 +80,22 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
 
     for target in (json, markdown, html):
         if target is not None:
-            guard_output(target, force=force, marker=b"labelprep")
+            guard_output(target, force=force)  # all of them before the work
     m = _complete(manifest)
     summary = _summary(m, meta or {})
     if decisions is not None:
         summary["decisions"] = _jsonable(decisions)
 
     if json is not None:
-        write_text(json, to_json(summary))
+        write_text(json, to_json(summary), force=force)
     if markdown is not None:
         from .text import markdown as render_markdown
 
-        write_text(markdown, render_markdown(summary))
+        write_text(markdown, render_markdown(summary), force=force)
     if html is not None:
         from .page import render
 
-        write_text(html, render(m, summary, root=root, review=review))
+        write_text(html, render(m, summary, root=root, review=review), force=force)
     return summary
 
 
@@ -156,6 +157,7 @@ def _summary(m, meta: dict) -> dict:
         "balance": balance,
         "issues": _issues(m),
         "near_duplicates": _near_duplicates(m),
+        "split_diagnosis": _split_diagnosis(m, meta) if in_split else None,
         "seed": _seed(meta),
         "root": meta.get("root"),
         "options": _jsonable(meta.get("stages", {})),
@@ -225,6 +227,20 @@ def _near_duplicates(m) -> dict:
         "label_conflicts": int(table["conflict"].sum()),
         "across_splits": int(table["leak"].sum()),
     }
+
+
+def _split_diagnosis(m, meta: dict) -> dict:
+    """The split's diagnosis, against the ratios and folds the sidecar records (else the defaults)."""
+    from ..defaults import RATIOS
+    from ..split_diagnosis import diagnose_split
+
+    options = {}
+    for stage in ("prepare", "split"):  # the split stage, when run last, wrote the split
+        recorded = meta.get("stages", {}).get(stage, {})
+        recorded = recorded.get("options", recorded) if isinstance(recorded, dict) else {}
+        if isinstance(recorded, dict) and recorded.get("ratios"):
+            options = recorded
+    return diagnose_split(m, ratios=tuple(options.get("ratios", RATIOS)), folds=options.get("folds"))
 
 
 def _seed(meta: dict):
