@@ -15,6 +15,7 @@ from labelprep import decisions, manifest
 from labelprep.cli import main
 from labelprep.errors import InputError
 from labelprep.pipeline import group_and_split, prepare
+from test_reports import parse_page
 
 HEADER = "path,action,value,note\n"
 
@@ -191,6 +192,8 @@ class TestStagesAndCommands:
         summary = json.loads((tmp_path / "out0" / "report.json").read_text())
         assert summary["decisions"]["unknown"][0]["path"] == "ghost.jpg"
         assert summary["decisions"]["applied"]["drop"] == 1
+        page = parse_page((tmp_path / "out0" / "report.html").read_text())
+        assert page.counts["decisions-unknown"] == 1 and page.counts["decided-drop"] == 1
 
     def test_prepare_reads_the_folders_file(self, tmp_path, copies_tree, runner):
         out = tmp_path / "out"

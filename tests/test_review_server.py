@@ -202,6 +202,24 @@ class TestApi:
         files = api(served, "/api/items?tab=files")["items"]
         assert [f["members"][0]["path"] for f in files] == ["dog/tiny.jpg"]
 
+    def test_link_evidence(self, served):
+        """Each member of a cluster says why it sits with the kept file: byte-identical, or its
+        closest hash pair within the grouping radius."""
+        items = api(served, "/api/items?tab=clusters")["items"]
+        by_path = {m["path"]: m for item in items for m in item["members"]}
+        copy = next(by_path[p] for p in ("cat/a.jpg", "cat/b.jpg") if not by_path[p]["keeper"])
+        assert copy["evidence"] == [{"hash": "sha256", "bits": 0, "what": "byte-identical"}]
+        near = next(by_path[p] for p in ("cat/c.jpg", "dog/c.jpg") if not by_path[p]["keeper"])
+        best = near["evidence"][0]
+        assert best["bits"] <= 8 and best["what"].endswith(("whole image", "centre 80%", "centre 70%"))
+        assert all(not m["evidence"] for m in by_path.values() if m["keeper"])
+
+    def test_unknown_decisions_are_listed(self, served):
+        served.decisions_path.write_text("path,action,value,note\nghost.jpg,drop,,\n")
+        served.load()
+        assert api(served, "/api/summary")["unknown"] == [
+            {"line": 2, "path": "ghost.jpg", "action": "drop", "value": ""}]
+
     def test_decide_writes_at_once_and_undo_restores(self, served):
         row = row_of(served, "dog/c.jpg")
         r = decide(served, row=row, action="relabel", value="cat", note="same rock pool")

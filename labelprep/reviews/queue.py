@@ -14,12 +14,14 @@ from .. import codes
 TABS = ("clusters", "conflicts", "files")
 COPY_CODES = ("exact-copy", "near-copy", "label-conflict")  # shown by the clusters themselves
 MAX_PAGE = 200
+_BOX = {"phash": "whole image", "phash_c80": "centre 80%", "phash_c70": "centre 70%",
+        "phash_mirror": "mirrored"}
 
 
 class Queue:
     """The review lists of one manifest (rows indexed by position, as the manifest file holds them)."""
 
-    def __init__(self, manifest):
+    def __init__(self, manifest, *, flips: bool = False):
         import numpy as np
         import pandas as pd
 
@@ -27,6 +29,7 @@ class Queue:
 
         m = manifest.reset_index(drop=True)
         self.m = m
+        self.flips = flips  # mirrored hashes count as evidence only when group matched them
         self.paths = m["path"].astype(str).to_numpy(dtype=object)
         self.index = pd.Index(self.paths)
         done = _complete(m.assign(_row=np.arange(len(m))))
@@ -77,21 +80,41 @@ class Queue:
     def cluster(self, gid: int, by_path: dict) -> dict:
         rows = self.members[gid]
         facts = self.cluster_facts.loc[gid]
-        keeper_hash = self.cell("phash", int(rows[0]))
         return {"kind": "cluster", "id": gid, "size": int(facts["size"]),
                 "conflict": bool(facts["conflict"]), "leak": bool(facts["leak"]),
-                "members": [self.member(int(r), keeper_hash, by_path) for r in rows]}
+                "members": [self.member(int(r), int(rows[0]), by_path) for r in rows]}
 
-    def member(self, row: int, keeper_hash, by_path: dict) -> dict:
+    def evidence(self, keeper: int, row: int) -> list:
+        """Why ``row`` sits with the kept file: byte-identical, or the closest of their
+        perceptual hashes (whole image, centred boxes, mirrored) with its distance in bits."""
+        from ..hashing import HASH_COLUMNS, MIRROR_COLUMN
+        from ..reports.page import hamming
+
+        if row == keeper:
+            return []
+        if self.cell("sha256", row) and self.cell("sha256", row) == self.cell("sha256", keeper):
+            return [{"hash": "sha256", "bits": 0, "what": "byte-identical"}]
+        found = []
+        for mine in (*HASH_COLUMNS, *((MIRROR_COLUMN,) if self.flips else ())):
+            for theirs in HASH_COLUMNS:
+                bits = hamming(self.cell(mine, row), self.cell(theirs, keeper))
+                if bits is not None:
+                    found.append({"hash": f"{mine}/{theirs}", "bits": bits,
+                                  "what": f"{_BOX[mine]} against {_BOX[theirs]}"})
+        return sorted(found, key=lambda e: e["bits"])[:2]
+
+    def member(self, row: int, keeper_row, by_path: dict) -> dict:
         from ..reports.page import hamming
 
         path = self.paths[row]
+        keeper_hash = self.cell("phash", keeper_row) if keeper_row is not None else None
         facts = {name: self.cell(name, row) for name in
                  ("label", "split", "issues", "decided", "muted", "label_original", "likely_label",
                   "fault", "format")}
         facts["keeper_cell"] = self.cell("keeper", row)
         facts["keeper"] = facts.pop("keeper_cell") == "True"
         facts["distance"] = hamming(keeper_hash, self.cell("phash", row)) if keeper_hash is not None else None
+        facts["evidence"] = self.evidence(keeper_row, row) if keeper_row is not None else []
         size = [self.cell(c, row) for c in ("width", "height")]
         facts["size"] = "x".join(size) if all(size) else ""
         return {"row": row, "path": path, **facts, "decisions": by_path.get(path, [])}

@@ -79,8 +79,17 @@ class ReviewServer(ThreadingHTTPServer):
         self.manifest = manifest.read(target)
         self.meta = manifest.read_sidecar(target)
         self.roots = roots_of(self.meta)
-        self.queue = Queue(self.manifest)
+        recorded = self.meta.get("stages", {}).get("prepare", {}).get("options", {})
+        self.queue = Queue(self.manifest, flips=bool(recorded.get("flips")))
         self.decisions = load(self.decisions_path, required=False)
+
+    def summary(self) -> dict:
+        """Counts of each list, and the decisions file: its rows and those naming no manifest row."""
+        from ..decisions import findings
+
+        return {**self.queue.counts(), "folder": str(self.folder),
+                "decisions_file": str(self.decisions_path), "decisions": len(self.decisions),
+                "unknown": findings(self.manifest, self.decisions)["unknown"]}
 
     def preview(self, row: int, side: int):
         """JPEG bytes of manifest row ``row`` fitting ``side``, or None (no file, outside the
@@ -242,9 +251,7 @@ class _Handler(BaseHTTPRequestHandler):
             name = route[len("/assets/"):]
             self._send(HTTPStatus.OK, _asset(name), ASSETS[name])
         elif route == "/api/summary":
-            self._json({**self.server.queue.counts(), "folder": str(self.server.folder),
-                        "decisions_file": str(self.server.decisions_path),
-                        "decisions": len(self.server.decisions)})
+            self._json(self.server.summary())
         elif route == "/api/items":
             self._items(query)
         elif route == "/api/image":

@@ -85,13 +85,14 @@
                                    "data-row": String(m.row) });
         fig.append(el("img", { src: image(m.row, "thumb"), alt: m.path, loading: "lazy",
                                width: "160", height: "160" }));
-        const evidence = item.kind === "cluster" ? (m.keeper ? "kept file" :
-          (m.distance === null ? "distance unknown" : `${m.distance} bits from the kept file`)) : "";
+        const best = m.evidence[0];
+        const evidence = item.kind !== "cluster" ? "" : m.keeper ? "kept file" : !best ? "no hash to compare" :
+          best.hash === "sha256" ? "byte-identical to the kept file" : `${best.bits} bits from the kept file (${best.what})`;
         const label = m.label_original ? `${m.label} (was ${m.label_original})` : (m.label || "no label");
         const issues = m.issues ? m.issues.split(";").join(", ") : "";
         fig.append(el("figcaption", {}, el("span", { class: "path" }, m.path),
           el("span", {}, `${label} · ${m.split || "left out"}${m.size ? " · " + m.size : ""}`),
-          evidence ? el("span", { class: "evidence" }, evidence) : "",
+          evidence ? el("span", { class: "evidence", title: m.evidence.map((e) => `${e.what}: ${e.bits} bits`).join("; ") }, evidence) : "",
           issues ? el("span", { class: "issues" }, issues) : "",
           m.muted ? el("span", { class: "muted" }, `muted: ${m.muted.split(";").join(", ")}`) : "",
           m.likely_label ? el("span", { class: "issues" }, `features suggest ${m.likely_label}`) : "",
@@ -259,6 +260,13 @@
   $("help-button").addEventListener("click", () => { $("help").hidden = !$("help").hidden; });
   for (const id of ["full", "help"]) $(id).addEventListener("click", closeOverlays);
 
-  summary().then(() => load(false)).then(() => say("ready: ? lists the keys"))
+  function ready() {
+    const unknown = state.summary.unknown;
+    const lines = unknown.map((u) => `line ${u.line}: ${u.action} ${u.path}${u.value ? " → " + u.value : ""}`);
+    say(unknown.length ? `ready: ? lists the keys. ${unknown.length} decisions name files not in the manifest ` +
+        `and are not applied (${lines.slice(0, 3).join("; ")}${unknown.length > 3 ? "; …" : ""})` : "ready: ? lists the keys");
+  }
+
+  summary().then(() => load(false)).then(ready)
     .catch((e) => say(`cannot load: ${e.message}`));
 })();
