@@ -13,6 +13,7 @@ import pandas as pd
 import pytest
 from PIL import Image
 
+from conftest import encode, textured
 from labelprep import decisions, manifest
 from labelprep.pipeline import prepare
 from labelprep.reviews import make_server
@@ -34,13 +35,10 @@ needs_driver = pytest.mark.skipif(
            "selenium (pip install -e '.[test]'); the page was not driven")
 
 
-@pytest.fixture
-def page(tmp_path):
-    out = tmp_path / "out"
-    prepare(make_tree(tmp_path / "photos"), out, jobs=1, seed=1)
-    server = make_server(out)
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
+def _open(tmp_path):
+    """A review server over ``tmp_path/out`` and a headless Chromium showing its page."""
+    server = make_server(tmp_path / "out")
+    threading.Thread(target=server.serve_forever, daemon=True).start()
     options = webdriver.ChromeOptions()
     options.binary_location = BROWSER
     for flag in FLAGS:
@@ -50,9 +48,16 @@ def page(tmp_path):
     options.add_argument("--window-size=1200,900")
     options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
     driver = webdriver.Chrome(options=options, service=webdriver.ChromeService(executable_path=DRIVER))
+    driver.get(server.url)
+    wait_for(driver, lambda d: "ready" in d.find_element(By.ID, "status").text)
+    return driver, server
+
+
+@pytest.fixture
+def page(tmp_path):
+    prepare(make_tree(tmp_path / "photos"), tmp_path / "out", jobs=1, seed=1)
+    driver, server = _open(tmp_path)
     try:
-        driver.get(server.url)
-        wait_for(driver, lambda d: "ready" in d.find_element(By.ID, "status").text)
         yield driver, server
     finally:
         driver.quit()
@@ -178,3 +183,32 @@ def test_screenshots(page, width, tmp_path):
     assert pixels.std() > 10  # a blank or failed render is one flat colour
     colourful = (pixels.max(axis=2) - pixels.min(axis=2)) > 60
     assert colourful.mean() > 0.01  # the thumbnails are coloured textures
+
+
+@needs_driver
+def test_pages_with_the_keyboard(tmp_path):
+    """52 clusters, 50 to a page: PgDn shows the last two, ↑ from a page's first item goes to the
+    previous page's last, ↓ from a page's last item to the next page's first."""
+    root = tmp_path / "photos"
+    for k in range(52):
+        (root / "cat").mkdir(parents=True, exist_ok=True)
+        data = encode(textured((64, 48), 100 + k))
+        (root / "cat" / f"{k:02d}a.jpg").write_bytes(data)
+        (root / "cat" / f"{k:02d}b.jpg").write_bytes(data)
+    prepare(root, tmp_path / "out", jobs=1)
+    driver, server = _open(tmp_path)
+    try:
+        pager = lambda d: d.find_element(By.ID, "pager").text  # noqa: E731
+        assert pager(driver).startswith("1–50 of 52")
+        press(driver, Keys.PAGE_DOWN)
+        wait_for(driver, lambda d: pager(d).startswith("51–52 of 52"))
+        press(driver, Keys.ARROW_UP)
+        wait_for(driver, lambda d: pager(d).startswith("1–50 of 52"))
+        assert driver.find_element(By.CSS_SELECTOR, "article.current").get_attribute("data-item") == "49"
+        press(driver, Keys.ARROW_DOWN)
+        wait_for(driver, lambda d: pager(d).startswith("51–52 of 52"))
+        assert driver.find_element(By.CSS_SELECTOR, "article.current").get_attribute("data-item") == "0"
+    finally:
+        driver.quit()
+        server.shutdown()
+        server.server_close()
