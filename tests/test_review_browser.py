@@ -169,13 +169,21 @@ def test_decide_with_the_keyboard_then_rerun(page, tmp_path):
 @needs_driver
 @pytest.mark.parametrize("width", [390, 1200])
 def test_screenshots(page, width, tmp_path):
-    """Phone and desktop widths: the page draws thumbnails and text, nothing runs off the side."""
-    driver, _ = page
+    """Phone and desktop widths: the page draws thumbnails and text, nothing runs off the side,
+    and the buttons decide as the keys do."""
+    driver, server = page
     driver.set_window_size(width, 900)
     wait_for(driver, lambda d: d.execute_script(
         "return [...document.images].filter(i => i.complete && i.naturalWidth > 0).length") >= 2)
     overflow = driver.execute_script("return document.documentElement.scrollWidth - window.innerWidth")
     assert overflow <= 0
+    # without a keyboard (a phone), the buttons decide: drop the current file, then undo it
+    driver.find_element(By.CSS_SELECTOR, "#actions [data-key='d']").click()
+    saved(driver, 1)
+    assert decisions.load(server.decisions_path)["action"].tolist() == ["drop"]
+    driver.find_element(By.CSS_SELECTOR, "#actions [data-key='u']").click()
+    wait_for(driver, lambda d: d.find_element(By.ID, "status").text == "undone: drop")
+    assert decisions.load(server.decisions_path).empty
     shot = tmp_path / f"review-{width}.png"
     driver.save_screenshot(str(shot))
     with Image.open(shot) as im:

@@ -216,6 +216,11 @@
       if (event.ctrlKey && event.key === "z" && !typing) { event.preventDefault(); undo(); }
       return;
     }
+    if (act(event.key)) event.preventDefault();
+  });
+
+  // one table of actions for the keys and the buttons (the buttons serve touch screens)
+  function act(key) {
     const now = current();
     const keys = {
       ArrowDown: () => move(1, 0), ArrowUp: () => move(-1, 0),
@@ -240,9 +245,11 @@
       "?": () => { $("help").hidden = !$("help").hidden; },
       "/": () => $("note").focus(),
     };
-    const action = keys[event.key];
-    if (action) { event.preventDefault(); action(); }
-  });
+    const action = keys[key];
+    if (action) action();
+    return Boolean(action);
+  }
+  document.querySelectorAll("#actions button").forEach((b) => b.addEventListener("click", () => act(b.dataset.key)));
 
   $("relabel-form").addEventListener("submit", (event) => {
     event.preventDefault();
