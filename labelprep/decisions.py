@@ -190,7 +190,7 @@ def apply(manifest, decisions):
     Returns
     -------
     pandas.DataFrame
-        A copy with ``decided`` (the actions that applied to the row, ``;``-separated),
+        ``manifest`` itself when there is nothing to apply or take back; else a copy with ``decided`` (the actions that applied to the row, ``;``-separated),
         ``decision_note`` (their notes, ``" | "``-separated), ``label_original`` (the label
         before a relabel; empty otherwise) and ``muted`` (warning codes a keep removed from
         ``issues``), and the error code ``dropped`` in ``issues``.
@@ -208,48 +208,44 @@ def apply(manifest, decisions):
     import numpy as np
     import pandas as pd
 
-    from .manifest import coerce
+    from .manifest import order_columns
 
     if not isinstance(manifest, pd.DataFrame):
         raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
     if "path" not in manifest.columns:
         raise ParameterError("manifest lacks column path")
     _check_table(decisions)
+    if decisions.empty and not _touched(manifest):
+        return manifest  # nothing to apply and nothing to take back: no copy of a big manifest
     out = _undone(manifest)
     if decisions.empty:
-        return coerce(out)
+        return order_columns(out)
     n = len(out)
-    paths = out["path"].astype(str)
-    index = pd.Index(paths)
-    if "label" not in out.columns:
-        out["label"] = ""
-    if "issues" not in out.columns:
-        out["issues"] = ""
-    labels = out["label"].fillna("").astype(str).to_numpy(dtype=object).copy()
-    issues = out["issues"].fillna("").astype(str).to_numpy(dtype=object).copy()
+    index = pd.Index(out["path"].astype(str))
+    labels = _text(out, "label")
+    issues = _text(out, "issues")
     original = np.full(n, "", dtype=object)
-    muted = np.full(n, "", dtype=object)
-    dropped = np.zeros(n, dtype=bool)
-    decided = [set() for _ in range(n)]
-    notes = [[] for _ in range(n)]
-
+    # only the rows a decision names are visited, so a big manifest costs vectorised copies only
+    decided: dict[int, set] = {}
+    notes: dict[int, list] = {}
+    keeps: dict[int, set] = {}
     table = _sorted(decisions)
     rows = index.get_indexer(table["path"])
     others = index.get_indexer(table["value"].where(table["action"].isin(PAIR_ACTIONS), ""))
-    keeps: dict[int, set] = {}
     for row, other, action, value, note in zip(rows, others, table["action"], table["value"], table["note"]):
         if row < 0 or (action in PAIR_ACTIONS and other < 0):
             continue  # unknown path: findings() reports it
         for r in (row, other) if action in PAIR_ACTIONS else (row,):
-            decided[r].add(action)
-            if note and note not in notes[r]:
+            decided.setdefault(r, set()).add(action)
+            if note and note not in notes.setdefault(r, []):
                 notes[r].append(note)
         if action == "drop":
-            dropped[row] = True
+            issues[row] = codes.join(codes.parse(issues[row]) + [DROP_CODE])
         elif action == "relabel":
             original[row], labels[row] = labels[row], value
         elif action == "keep":
             keeps.setdefault(row, set()).add(value)
+    muted = np.full(n, "", dtype=object)
     for row, named in keeps.items():
         warnings = [c for c in codes.parse(issues[row])
                     if c in codes.CODES and codes.CODES[c].severity == codes.WARNING]
@@ -257,32 +253,51 @@ def apply(manifest, decisions):
         muted[row] = codes.join(silenced)
         issues[row] = codes.join(c for c in codes.parse(issues[row]) if c not in silenced)
 
-    out["label"] = labels
-    out["issues"] = codes.replace_stage_codes(pd.Series(issues, index=out.index, dtype=object),
-                                              _STAGE, {DROP_CODE: dropped})
     order = {a: i for i, a in enumerate(ACTIONS)}
-    out["decided"] = [";".join(sorted(d, key=order.get)) for d in decided]
-    out["decision_note"] = [" | ".join(n) for n in notes]
-    out["label_original"] = original
-    out["muted"] = muted
-    return coerce(out)
+    decided_cells = np.full(n, "", dtype=object)
+    note_cells = np.full(n, "", dtype=object)
+    for row, actions in decided.items():
+        decided_cells[row] = ";".join(sorted(actions, key=order.get))
+        note_cells[row] = " | ".join(notes.get(row, []))
+    for name, cells in (("label", labels), ("issues", issues), ("decided", decided_cells),
+                        ("decision_note", note_cells), ("label_original", original), ("muted", muted)):
+        out[name] = pd.Series(cells, index=out.index, dtype=object)
+    return order_columns(out)
+
+
+def _text(frame, column: str):
+    """A writable object array of ``frame[column]`` as text, empty strings for missing cells."""
+    import numpy as np
+
+    if column not in frame.columns:
+        return np.full(len(frame), "", dtype=object)
+    return frame[column].fillna("").astype(str).to_numpy(dtype=object).copy()
+
+
+def _touched(manifest) -> bool:
+    """Whether an earlier :func:`apply` left anything in ``manifest``."""
+    if any(c in manifest.columns for c in COLUMNS):
+        return True
+    return "issues" in manifest.columns and bool(
+        manifest["issues"].astype(str).str.contains(DROP_CODE, regex=False).any())
 
 
 def _undone(manifest):
     """A copy of ``manifest`` with an earlier :func:`apply` taken back."""
+    import numpy as np
     import pandas as pd
 
     out = manifest.copy()
     if "label_original" in out.columns:
-        before = out["label_original"].fillna("").astype(str)
-        out["label"] = before.where(before != "", out["label"].fillna("").astype(str))
+        before = _text(out, "label_original")
+        labels = _text(out, "label")
+        out["label"] = pd.Series(np.where(before != "", before, labels), index=out.index, dtype=object)
     if "issues" in out.columns:
-        issues = out["issues"].fillna("").astype(str)
-        if "muted" in out.columns:
-            back = out["muted"].fillna("").astype(str)
-            issues = pd.Series([codes.join(codes.parse(a) + codes.parse(b)) if b else a
-                                for a, b in zip(issues, back)], index=out.index, dtype=object)
-        out["issues"] = codes.replace_stage_codes(issues, _STAGE, {})
+        issues = _text(out, "issues")
+        back = _text(out, "muted") if "muted" in out.columns else np.full(len(out), "", dtype=object)
+        for i in np.flatnonzero((back != "") | pd.Series(issues).str.contains(DROP_CODE, regex=False).to_numpy()):
+            issues[i] = codes.join([c for c in codes.parse(issues[i]) if c != DROP_CODE] + codes.parse(back[i]))
+        out["issues"] = pd.Series(issues, index=out.index, dtype=object)
     return out.drop(columns=[c for c in COLUMNS if c in out.columns])
 
 
