@@ -385,13 +385,15 @@ def _root_from(meta: dict):
 @click.option("--json", "json_path", type=click.Path(path_type=Path), help="Write the audit as JSON.")
 @options.BY_NAME["max_distance"].decorator()
 @SCAN_OPTIONS
+@_decisions
 @_force
 @_quiet
-def audit(target, fail_on, json_path, max_distance, force, quiet, **scan_options):
+def audit(target, fail_on, json_path, max_distance, decisions, force, quiet, **scan_options):
     """Leaks and class balance of an existing split.
 
     MANIFEST_OR_ROOT is a manifest with a split column, or a folder laid out as
-    ROOT/<train|val|test>/<label>/... (scanned first, in memory only).
+    ROOT/<train|val|test>/<label>/... (scanned first, in memory only). Pairs the decisions
+    file separates (beside the manifest, or --decisions) are not copies, so no leak.
     """
     from .audits import audit as run, render
     from .errors import GateFailed
@@ -400,9 +402,11 @@ def audit(target, fail_on, json_path, max_distance, force, quiet, **scan_options
         from .scanner import scan as scan_run
 
         m = scan_run(target, progress=_progress(quiet), **scan_options)
+        decided = _load_decisions(decisions, target) if decisions is not None else None
     else:
         m = _read(target)
-    result = run(m, max_distance=max_distance)
+        decided = _load_decisions(decisions, target.parent)
+    result = run(m, max_distance=max_distance, decisions=decided)
     if json_path is not None:
         import json
 

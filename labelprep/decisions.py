@@ -354,6 +354,20 @@ def edit_links(paths, links, decisions):
     return np.concatenate([links, pairs["join"]], axis=1)
 
 
+def separated_mask(paths, a, b, decisions):
+    """Which row pairs ``(a[k], b[k])`` (indices into ``paths``) ``decisions`` separates."""
+    import numpy as np
+
+    a, b = np.asarray(a, dtype=np.int64), np.asarray(b, dtype=np.int64)
+    if decisions is None or decisions.empty or not len(a):
+        return np.zeros(len(a), dtype=bool)
+    _check_table(decisions)
+    chosen = decisions[decisions["action"] == "separate"]
+    apart = {tuple(sorted(pair)) for pair in zip(chosen["path"], chosen["value"])}
+    names = np.asarray(paths, dtype=object)
+    return np.array([tuple(sorted((x, y))) in apart for x, y in zip(names[a], names[b])], dtype=bool)
+
+
 def findings(manifest, decisions) -> dict:
     """What a person must hear about applying ``decisions`` to ``manifest``.
 

@@ -261,3 +261,22 @@ class TestPut:
         d4, previous = decisions.put(d3, {"path": "a.jpg", "action": "separate", "value": "b.jpg"}, remove=True)
         assert previous["action"] == "separate" and len(d4) == 1
         assert decisions.to_csv_bytes(d4) == b"path,action,value,note\na.jpg,relabel,eel,\n"
+
+
+def test_audit_honours_separate(tmp_path, copies_tree, runner):
+    """Byte copies the decisions separate may land in two splits; the audit then counts them as
+    separated, not as a leak, and its gate passes."""
+    import labelprep
+
+    m = labelprep.check(labelprep.scan(copies_tree, jobs=1))
+    m = m.assign(split=["train" if p == "cat/a.jpg" else "test" for p in m["path"]])
+    rows = "cat/a.jpg,separate,cat/b.jpg,\n"
+    assert [(p["path_a"], p["path_b"]) for p in labelprep.audit(m)["near_leaks"]] == [("cat/a.jpg", "cat/b.jpg")]
+    result = labelprep.audit(m, decisions=table(rows))
+    assert result["near_leaks"] == [] and result["separated"] == 1
+    manifest.write(m, tmp_path / "m.csv")
+    assert runner.invoke(main, ["audit", str(tmp_path / "m.csv"), "--fail-on", "leaks"]).exit_code == 1
+    write(tmp_path / "decisions.csv", rows)
+    out = runner.invoke(main, ["audit", str(tmp_path / "m.csv"), "--fail-on", "leaks"])
+    assert out.exit_code == 0, out.output
+    assert "not counted: 1 across splits that the decisions file separates" in out.output
