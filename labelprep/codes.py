@@ -48,6 +48,7 @@ _CODE_LIST = [
     IssueCode("suspect-label", WARNING, "vet", "its nearest neighbours in feature space mostly carry one other label, named in likely_label"),
     IssueCode("lone-image", WARNING, "vet", "far from every other file in feature space (oddness at or above the limit): off-topic, broken or of a class of its own"),
     IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
+    IssueCode("dropped", ERROR, "decisions", "a drop decision in the decisions file leaves the file out of the split"),
 ]
 
 CODES: dict[str, IssueCode] = {c.code: c for c in _CODE_LIST}
