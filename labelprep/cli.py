@@ -299,7 +299,10 @@ def vet(manifest_path, root, force, quiet, **chosen):
     facts = m.attrs["vet"]
     _say(quiet, f"{facts['vetted']} files vetted on {facts['features']} features: "
                 f"{facts['suspect']} suspect-label, {facts['lone']} lone-image")
-    _print_issues(m, quiet)
+    # the check codes' reasons are worded with the limits the manifest was checked with
+    stages = read_sidecar(manifest_path).get("stages", {})
+    checked = stages.get("check", stages.get("prepare", {})).get("options", {})
+    _print_issues(m, quiet, options.for_stage("check", checked))
 
 
 @main.command()
