@@ -118,9 +118,9 @@ GROUP_OPTIONS = _stack(
     _max_distance,
     click.option("--keep-conflicts", is_flag=True,
                  help="Keep clusters that span labels in the split (default: leave them out)."),
-    click.option("--flips", is_flag=True,
-                 help="Also match left-right mirrored copies (off by default: some labels, such as "
-                      "left/right signs, change when mirrored)."),
+    click.option("--flips/--no-flips", default=True, show_default=True,
+                 help="Match left-right mirrored copies too (a mirrored copy across splits is a leak); "
+                      "--no-flips for labels that change when mirrored, such as left/right signs."),
 )
 SPLIT_OPTIONS = _stack(
     click.option("--ratios", callback=_parse_ratios, default=",".join(map(str, defaults.RATIOS)),

@@ -42,7 +42,8 @@ _CODE_LIST = [
     IssueCode("near-blank", WARNING, "check", "almost one flat colour (luminance spread under the limit): blank, lens cap, failed capture"),
     IssueCode("has-location", WARNING, "check", "EXIF GPS position present: a privacy risk if the data set is shared"),
     IssueCode("exact-copy", WARNING, "group", "byte-identical to another file"),
-    IssueCode("near-copy", WARNING, "group", "looks like another file that is not byte-identical to it: perceptual hashes of the whole image or of a centred box within the radius"),
+    IssueCode("near-copy", WARNING, "group", "the same picture as another file that is not byte-identical to it: proposed by the perceptual hashes, confirmed on the pixels"),
+    IssueCode("mirrored-label", WARNING, "group", "a left-right mirrored copy of a file under another label: right if mirroring changes the class (then group without mirror matching), otherwise one label is wrong"),
     IssueCode("label-conflict", ERROR, "group", "its near-duplicate cluster holds more than one label"),
     IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
 ]

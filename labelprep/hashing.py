@@ -159,3 +159,65 @@ def _hex(blocks):
     flat = blocks.reshape(len(blocks), -1)
     bits = np.packbits(flat > np.median(flat, axis=1, keepdims=True), axis=1)
     return [row.tobytes().hex() for row in bits]
+
+
+SHIFTS = tuple((dy, dx) for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0))
+"""The eight directions of :func:`shifted_phashes`."""
+
+
+def shifted_phashes(pixels, step):
+    """The whole-image hash of each sketch moved by ``step`` pixels in each of the 8 directions.
+
+    pHash moves by many bits when a picture is shifted by a few percent of its side, so a shifted
+    copy is no candidate for the hash search; these hashes make it one. The sketch is moved with
+    its edge repeated into the gap; only the 8x8 low frequencies are computed (two products per
+    direction instead of a whole DCT).
+
+    Parameters
+    ----------
+    pixels : numpy.ndarray
+        ``(n, 32, 32)`` sketches (:func:`sketch_pixels`).
+    step : int or array of int
+        Pixels to move by, for all sketches or one per sketch (1 to 8).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n, 8)`` uint64 hashes in the order of :data:`SHIFTS`, imagehash's bit order.
+
+    Examples
+    --------
+    >>> from PIL import Image
+    >>> img = Image.radial_gradient("L")
+    >>> fp = fingerprint(img)
+    >>> moved = shifted_phashes(sketch_pixels([fp["sketch"]]), 2)
+    >>> moved.shape, int(np.bitwise_count(moved[0, 0] ^ np.uint64(int(fp["phash"], 16)))) < 32
+    ((1, 8), True)
+    """
+    pixels = np.asarray(pixels, dtype=np.float32)
+    n = len(pixels)
+    steps = np.broadcast_to(np.asarray(step, dtype=np.int64), (n,))
+    if n and (steps.min() < 1 or steps.max() > 8):
+        raise ValueError(f"step must be between 1 and 8 pixels, got {int(steps.min())}..{int(steps.max())}")
+    basis = _DCT[:_BITS].astype(np.float32)
+    out = np.zeros((n, len(SHIFTS)), dtype=np.uint64)
+    for s in np.unique(steps):
+        rows = np.flatnonzero(steps == s)
+        moved = {d: basis @ _shift_matrix(d * s) for d in (-1, 0, 1)}
+        left = {dy: np.einsum("ij,njk->nik", moved[dy], pixels[rows]) for dy in (-1, 0, 1)}
+        blocks = np.stack([left[dy] @ moved[dx].T for dy, dx in SHIFTS], axis=1).astype(np.float64)
+        flat = blocks.reshape(len(rows) * len(SHIFTS), _BITS, _BITS)
+        # the same zeroing of rounding noise as _transform, then the median rule of _hex
+        flat[np.abs(flat) <= _ZERO * np.abs(flat).max(axis=(1, 2), keepdims=True)] = 0.0
+        bits = flat.reshape(len(flat), -1)
+        packed = np.packbits(bits > np.median(bits, axis=1, keepdims=True), axis=1)
+        out[rows] = packed.view(">u8").astype(np.uint64).reshape(len(rows), len(SHIFTS))
+    return out
+
+
+def _shift_matrix(offset):
+    """(32, 32) matrix moving a column vector by ``offset`` entries, the edge repeated."""
+    source = np.clip(np.arange(_THUMB) - offset, 0, _THUMB - 1)
+    matrix = np.zeros((_THUMB, _THUMB), dtype=np.float32)
+    matrix[np.arange(_THUMB), source] = 1.0
+    return matrix

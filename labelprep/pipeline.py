@@ -16,7 +16,7 @@ def prepare(root, out, *, layout="auto", labels=None, group_pattern=None, group_
             include_hidden=False,
             jobs=None, max_pixels=defaults.MAX_PIXELS, min_side=defaults.MIN_SIDE,
             max_aspect=defaults.MAX_ASPECT, min_spread=defaults.MIN_SPREAD,
-            max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=False, ratios=defaults.RATIOS,
+            max_distance=defaults.MAX_DISTANCE, keep_conflicts=False, flips=True, ratios=defaults.RATIOS,
             seed=defaults.SEED, folds=None, keep_from=None, force=False, progress=None, cluster=None):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 

@@ -58,13 +58,31 @@ class TestLinks:
         assert cluster_sets(group(m, max_distance=4)) == set()
         assert group(m, max_distance=5)["issues"].tolist() == ["near-copy", "near-copy", ""]
 
-    def test_union_find_is_transitive(self):
-        """A chain a-b-c-d, each step 6 bits, ends 18 bits apart: one cluster at radius 6."""
+    def test_a_chain_does_not_become_one_cluster(self):
+        """A chain d-b-c-a, each step 6 bits, ends 18 bits apart: at radius 6 the star rule
+        keeps the end that is not verified against the anchor out, and every member's
+        linked_to is its cluster's anchor, within the radius of it."""
         chain = [flip(BASE, *range(0, k)) for k in (0, 6, 12, 18)]
         m = manifest([{"path": p, "phash": h} for p, h in zip("dbca", chain)])
-        out = group(m, max_distance=6)
-        assert cluster_sets(out) == {frozenset("abcd")}
-        assert out["dup_group"].nunique() == 1
+        out = group(m, max_distance=6).set_index("path")
+        assert cluster_sets(out.reset_index()) == {frozenset("bcd")}
+        assert out.loc[["c", "d"], "linked_to"].tolist() == ["b", "b"]
+        assert out.loc["b", "linked_to"] == "" and out.loc["a", "linked_to"] == ""
+        hashes = dict(zip("dbca", chain))
+        for member in "cd":
+            assert bin(int(hashes[member], 16) ^ int(hashes["b"], 16)).count("1") <= 6
+
+    def test_no_cluster_holds_two_members_further_than_two_links(self):
+        """A long chain of 40 hashes, 4 bits a step: clusters never span more than 2 links
+        (8 bits), where single linkage would make one cluster of all 40."""
+        chain = [flip(BASE, *range(0, 4 * k)) for k in range(16)] + \
+            [flip(~BASE & (2**64 - 1), *range(0, 4 * k)) for k in range(16)]
+        m = manifest([{"path": f"p{k:02d}", "phash": h} for k, h in enumerate(chain)])
+        out = group(m, max_distance=4)
+        for _, members in out[out["dup_group"].notna()].groupby("dup_group"):
+            values = [int(h, 16) for h in members["phash"]]
+            assert max(bin(x ^ y).count("1") for x in values for y in values) <= 8
+            assert len(members) <= 3
 
     def test_exact_and_near_in_one_cluster(self):
         """An exact copy of a near copy joins the same cluster; both codes where they apply."""
@@ -189,8 +207,8 @@ class TestRealImages:
             sizes = out.loc[originals].groupby("dup_group").size()
             return sizes.max(), sizes[sizes > 1].sum()
 
-        largest, count = linked(group(m[["path", "sha256", "phash"]], max_distance=8))
-        assert largest > 100 and count > len(digits) / 3
+        _, count = linked(group(m[["path", "sha256", "phash"]], max_distance=8))
+        assert count > len(digits) / 3
         out = group(m)
         largest, count = linked(out)
         assert largest <= 3 and count <= 0.01 * len(digits)
@@ -201,8 +219,9 @@ class TestRealImages:
 
     def test_caption_on_textures_is_not_a_match(self):
         """scikit-image's brick and grass textures, each with the same caption box pasted in
-        the lower-left corner: the caption brings their pHashes within 8 bits, the centre-box
-        check keeps them apart, and each captioned copy still joins its original."""
+        the lower-left corner: the caption brings their pHashes within 8 bits, the pixels keep
+        them apart. (A caption over 3% of the picture is a large local difference: the
+        captioned copy does not join its original either; the README says so.)"""
         def caption(img):
             out = img.convert("RGB")
             w, h = out.size
@@ -216,8 +235,7 @@ class TestRealImages:
                             "grass": grass, "grass-cap": caption(grass)})
         caps = m.set_index("path")["phash"]
         assert bin(int(caps["brick-cap"], 16) ^ int(caps["grass-cap"], 16)).count("1") <= 8
-        assert cluster_sets(group(m)) == {frozenset({"brick", "brick-cap"}),
-                                          frozenset({"grass", "grass-cap"})}
+        assert not any({"brick-cap", "grass-cap"} <= members for members in cluster_sets(group(m)))
 
 
 class TestParameters:
