@@ -332,7 +332,8 @@ def _evidence(rows, max_distance, flips, progress, cluster):
         side = _shorter_side(rows)
         found = compare(pixels[where[:k]], pixels[where[k:]], mirror=flips,
                         side=np.fmin(side[a[seen]], side[b[seen]]))
-        ok[seen] = accepted(found)
+        low = _low_detail(rows)
+        ok[seen] = accepted(found, smooth=low[a[seen]] | low[b[seen]])
         likeness[seen], blemish[seen], mirrored[seen] = found["likeness"], found["blemish"], found["mirrored"]
     if (~seen).any():
         own = dist[~seen][:, :len(columns), :len(columns)]  # the hashes a scan stores, not the shifted ones
@@ -370,11 +371,7 @@ def _hash_verified(rows, dist, columns, max_distance, pairs):
     """
     import numpy as np
 
-    if "detail" in rows.columns:
-        # unknown detail (a manifest from elsewhere) counts as detailed: plain pHash behaviour
-        low = rows["detail"].astype("Float64").fillna(1.0).to_numpy(dtype=float) < LOW_DETAIL
-    else:
-        low = np.zeros(len(rows), dtype=bool)
+    low = _low_detail(rows)
     a, b = pairs
     k = len(columns)
     same_box = np.eye(k, dtype=bool)
@@ -391,6 +388,16 @@ def _hash_verified(rows, dist, columns, max_distance, pairs):
         return detailed & ~(low[a] | low[b])
     smooth = dist[:, whole, whole] <= min(max_distance, LOW_DETAIL_DISTANCE)
     return np.where(low[a] | low[b], smooth, detailed)
+
+
+def _low_detail(rows):
+    """Rows whose ``detail`` is under LOW_DETAIL; unknown detail (a manifest from elsewhere)
+    counts as detailed."""
+    import numpy as np
+
+    if "detail" not in rows.columns:
+        return np.zeros(len(rows), dtype=bool)
+    return rows["detail"].astype("Float64").fillna(1.0).to_numpy(dtype=float) < LOW_DETAIL
 
 
 def _decisions(rows, links):
