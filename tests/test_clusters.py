@@ -266,3 +266,110 @@ class TestParameters:
         rows = [{"path": f"p{k}", "phash": f"{k * 0x9E3779B97F4A7C15 % 2**64:016x}"} for k in range(30000)]
         group(manifest(rows), progress=progress)
         assert seen and seen[0][1] == "near-duplicate search"
+
+
+def _photo_rows():
+    """scikit-image's camera photo, a JPEG re-encode, a mirrored copy and the coffee photo."""
+    camera = Image.fromarray(skimage.data.camera())
+    buf = io.BytesIO()
+    camera.save(buf, "JPEG", quality=70)
+    return {"camera.png": camera, "camera-jpeg.jpg": Image.open(buf),
+            "camera-mirror.png": camera.transpose(Image.Transpose.FLIP_LEFT_RIGHT),
+            "coffee.png": Image.fromarray(skimage.data.coffee())}
+
+
+class TestVerifiedLinks:
+    def test_copies_verified_different_photo_not(self):
+        """On real photos (scikit-image's camera and coffee) the JPEG and the mirrored copy are
+        verified links with their evidence; coffee links to nothing."""
+        from labelprep.clusters import verified_links
+
+        m = _fingerprinted(_photo_rows())
+        links = verified_links(m)
+        pairs = {(m["path"][a], m["path"][b]): kind for a, b, kind in zip(links["first"], links["second"], links["kind"])}
+        assert pairs[("camera.png", "camera-jpeg.jpg")] == "near"
+        assert pairs[("camera.png", "camera-mirror.png")] == "mirror"
+        assert not any("coffee.png" in pair for pair in pairs)
+        assert (links["likeness"] > 0.95).all() and (links["blemish"] < 0.3).all()
+        no_mirror = verified_links(m, flips=False)
+        assert "mirror" not in set(no_mirror["kind"])
+
+    def test_group_records_the_link_of_each_member(self):
+        out = group(_fingerprinted(_photo_rows())).set_index("path")
+        assert out.loc["camera-jpeg.jpg", "link_kind"] in ("near", "")
+        members = out[out["dup_group"].notna()]
+        assert set(members.index) == {"camera.png", "camera-jpeg.jpg", "camera-mirror.png"}
+        anchor = members.index[members["linked_to"] == ""][0]
+        assert set(members.loc[members.index != anchor, "linked_to"]) == {anchor}
+        assert pd.isna(out.loc["coffee.png", "dup_group"])
+
+    def test_no_flips_leaves_the_mirrored_copy_out(self):
+        out = group(_fingerprinted(_photo_rows()), flips=False).set_index("path")
+        assert pd.isna(out.loc["camera-mirror.png", "dup_group"])
+        assert out.loc["camera.png", "dup_group"] == out.loc["camera-jpeg.jpg", "dup_group"]
+
+    def test_mirrored_pair_under_two_labels_is_not_a_label_conflict(self):
+        """A mirrored copy filed under another label (left/right classes) is reported as
+        mirrored-label, a warning, not as label-conflict."""
+        m = _fingerprinted(_photo_rows())
+        m["label"] = ["left", "left", "right", "cup"]  # sorted by path: camera-jpeg, camera-mirror, camera, coffee
+        m["label"] = m["path"].map({"camera.png": "left", "camera-jpeg.jpg": "left",
+                                    "camera-mirror.png": "right", "coffee.png": "cup"})
+        out = group(m).set_index("path")
+        assert "mirrored-label" in out.loc["camera-mirror.png", "issues"]
+        assert not out["issues"].str.contains("label-conflict").any()
+        # an ordinary copy under another label is still a conflict
+        m.loc[m["path"] == "camera-jpeg.jpg", "label"] = "right"
+        assert group(m).set_index("path").loc["camera.png", "issues"].count("label-conflict") == 1
+
+
+class TestGivenLinks:
+    def rows(self):
+        return manifest([{"path": p, "phash": flip(BASE, *range(k))} for p, k in
+                         (("a", 0), ("b", 3), ("c", 40), ("d", 44))])
+
+    def test_join_and_separate(self):
+        """A join links two rows the hashes would not; a separate removes a hash link and keeps
+        the two out of one cluster."""
+        m = self.rows()
+        assert cluster_sets(group(m)) == {frozenset("ab"), frozenset("cd")}
+        decisions = pd.DataFrame({"path": ["a", "c"], "other": ["c", "d"], "action": ["join", "separate"]})
+        out = group(m, links=decisions).set_index("path")
+        assert cluster_sets(out.reset_index()) == {frozenset("abc")}
+        assert out.loc["c", "link_kind"] == "given"
+        assert pd.isna(out.loc["d", "dup_group"])
+
+    def test_separate_holds_inside_a_star(self):
+        """Two rows both verified against one anchor but separated never share its cluster."""
+        m = manifest([{"path": p, "phash": flip(BASE, *bits)} for p, bits in
+                      (("a", ()), ("b", (1, 2)), ("c", (5, 6)))])
+        out = group(m, max_distance=4, links=pd.DataFrame({"path": ["b"], "other": ["c"], "action": ["separate"]}))
+        assert all(not {"b", "c"} <= members for members in cluster_sets(out))
+
+    def test_bad_links(self):
+        m = self.rows()
+        with pytest.raises(ParameterError, match="not in the manifest: 'zz'"):
+            group(m, links=pd.DataFrame({"path": ["a"], "other": ["zz"], "action": ["join"]}))
+        with pytest.raises(ParameterError, match="'merge'"):
+            group(m, links=pd.DataFrame({"path": ["a"], "other": ["b"], "action": ["merge"]}))
+        with pytest.raises(ParameterError, match="action"):
+            group(m, links=pd.DataFrame({"path": ["a"], "other": ["b"]}))
+        with pytest.raises(TypeError, match="links must be"):
+            group(m, links=[("a", "b")])
+
+
+def test_group_command_no_flips(runner, tmp_path):
+    """`labelprep group --no-flips` writes what group(flips=False) returns; the default matches
+    mirrored copies."""
+    from labelprep import manifest as manifest_io
+    from labelprep.cli import main
+
+    m = _fingerprinted(_photo_rows())
+    target = tmp_path / "m.csv"
+    manifest_io.write(m, target)
+    assert runner.invoke(main, ["group", str(target), "-q"]).exit_code == 0
+    assert manifest_io.read(target).set_index("path").loc["camera-mirror.png", "link_kind"] != ""
+    assert runner.invoke(main, ["group", str(target), "-q", "--no-flips"]).exit_code == 0
+    written = manifest_io.read(target)
+    expected = group(m, flips=False)
+    assert written["dup_group"].tolist() == expected["dup_group"].tolist()
