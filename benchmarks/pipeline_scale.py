@@ -1,8 +1,10 @@
 """Pipeline scale: a synthetic manifest of 1,000,000 rows through group -> split -> report.
 
 The manifest has 100 classes of unequal size, 200,000 user groups (each inside one class) and
-planted near-duplicates: pairs whose perceptual hashes differ by 1..6 bits and exact copies
-(same sha256 and hash), some of them across groups. Each stage runs once, in this process, on the
+planted near-duplicates: pairs whose perceptual hashes differ by 1..6 bits and whose sketches
+(the 32x32 thumbnails a scan stores, 1.4 kB of base64 per row) differ by a little noise, and
+exact copies (same sha256, hash and sketch), some of them across groups. Every candidate pair is
+verified on the sketches, as for real files. Each stage runs once, in this process, on the
 output of the one before; the script prints each stage's time and the peak resident memory so
 far, the totals against the issue's budget (under 3 minutes, under 4 GB), and two checks that the
 result is right: planted pairs found in one cluster, and no cluster or group spanning splits.
@@ -14,6 +16,7 @@ result is right: planted pairs found in one cluster, and no cluster or group spa
 from __future__ import annotations
 
 import argparse
+import base64
 import os
 import resource
 import tempfile
@@ -63,6 +66,14 @@ def synthetic_manifest(rows: int, groups: int, seed: int = 0):
         values[near] = values[originals[:n_near]] ^ flips
         values[exact] = values[originals[n_near:]]
     digest[exact] = digest[originals[n_near:]]
+    # sketches (the 32x32 thumbnails group verifies candidates on): random for distinct rows, the
+    # original's with a little noise for a near copy, the original's for an exact copy
+    pixels = rng.integers(0, 256, (rows, 32, 32), dtype=np.uint8)
+    noise = rng.integers(-3, 4, (n_near, 32, 32))
+    pixels[near] = np.clip(pixels[originals[:n_near]].astype(np.int16) + noise, 0, 255).astype(np.uint8)
+    pixels[exact] = pixels[originals[n_near:]]
+    sketch = [base64.b64encode(row.tobytes()).decode("ascii") for row in pixels]
+    del pixels, noise
     label[copies] = label[originals]  # a copy carries its original's label (no planted conflicts)
 
     df = pd.DataFrame({
@@ -74,6 +85,7 @@ def synthetic_manifest(rows: int, groups: int, seed: int = 0):
         "format": "jpeg",
         "sha256": [f"{a:016x}{b:016x}{c:016x}{d:016x}" for a, b, c, d in digest.tolist()],
         **{name: [f"{h:016x}" for h in values.tolist()] for name, values in hashes.items()},
+        "sketch": sketch,
         "detail": rng.uniform(0.1, 0.5, rows).round(4),  # photos: well above the low-detail limit
         "issues": "",
         "mtime_ns": np.full(rows, 1_700_000_000_000_000_000), "mode": "RGB", "frames": 1,

@@ -273,6 +273,11 @@ def _candidates(rows, max_distance, flips, progress, cluster):
     return pairs[:, keep], table, present, columns
 
 
+SHIFTED_MAX_SIDE = 128
+"""Images up to this shorter side (px) get shifted hashes: there a shift of a few pixels is a
+sketch pixel or more. On larger images it is a fraction of one, which pHash absorbs; leaving
+them out keeps the search at four hashes per photo (benchmarks/pipeline_scale.py)."""
+
 SHIFT_CHUNK = 65_536
 """Sketches decoded at a time for the shifted hashes (64 MB of pixels)."""
 
@@ -289,16 +294,16 @@ def _shorter_side(rows):
 
 def _with_shifted(rows, table, present):
     """The hash table with the eight shifted whole-image hashes of each sketch appended
-    (:func:`labelprep.hashing.shifted_phashes`): a copy moved by a few percent of its side is a
-    candidate through them. The step is 2 sketch pixels (pHash itself absorbs about one), or 4
+    (:func:`labelprep.hashing.shifted_phashes`) where the image is small (SHIFTED_MAX_SIDE): a
+    copy moved by a few percent of its side is a candidate through them. The step is 2 sketch pixels (pHash itself absorbs about one), or 4
     for images of 12 px or less, where one source pixel spans 3-4 sketch pixels."""
     import numpy as np
 
     from .hashing import SHIFTS, shifted_phashes, sketch_pixels
 
     sketch = _text(rows, "sketch")
-    have = np.flatnonzero(sketch != "")
     side = _shorter_side(rows)
+    have = np.flatnonzero((sketch != "") & (side <= SHIFTED_MAX_SIDE))
     extra = np.zeros((len(rows), len(SHIFTS)), dtype=np.uint64)
     for start in range(0, len(have), SHIFT_CHUNK):
         part = have[start:start + SHIFT_CHUNK]
