@@ -44,7 +44,16 @@ def _peak_mb() -> float:
 def _reset_peak() -> None:
     """Start the peak count again from the memory in use now (Linux: /proc/self/clear_refs 5), so
     the stages' peak does not include the synthetic manifest's construction; the manifest itself,
-    resident, still counts."""
+    resident, still counts. Memory the construction freed is first handed back to the system
+    (glibc's malloc_trim), as a fresh process reading the manifest would not hold it."""
+    import ctypes
+    import gc
+
+    gc.collect()
+    try:
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):
+        pass
     try:
         Path("/proc/self/clear_refs").write_text("5")
     except OSError:
