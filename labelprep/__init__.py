@@ -27,6 +27,7 @@ _EXPORTS = {
     "verified_links": "clusters",
     "split": "splits",
     "split_summary": "splits",
+    "diagnose_split": "split_diagnosis",
     "audit": "audits",
     "report": "reports",
     "export": "exports",

@@ -204,6 +204,26 @@ def verified_links(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, flips=True, p
     return _evidence(coerce(manifest.reset_index(drop=True)), int(max_distance), flips, progress, cluster)
 
 
+def near_links(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, flips=True, progress=None, cluster=None):
+    """:func:`verified_links` as a (2, k) array of row positions ``a < b``, for the audit.
+
+    :func:`labelprep.audits.audit` calls it, so an audit of a split made from these clusters
+    finds no near-duplicate pair across splits. The caller validates the arguments, as
+    :func:`group` does; ``path`` and ``sha256`` may be missing.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"phash": ["ff00ff00ff00ff00", "ff00ff00ff00ff01", "0123456789abcdef"]})
+    >>> near_links(m, max_distance=4).tolist()
+    [[0], [1]]
+    """
+    import numpy as np
+
+    links = _evidence(manifest.reset_index(drop=True), int(max_distance), flips, progress, cluster)
+    return np.vstack([links["first"].to_numpy(), links["second"].to_numpy()]).astype(np.int64)
+
+
 def _check_options(manifest, max_distance, flips, progress, **flags):
     import numpy as np
 

@@ -123,7 +123,7 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
     import pandas as pd
 
     table = pd.DataFrame(written, columns=list(RESULT_COLUMNS))
-    _write_lists(table, dest)
+    _write_lists(table, dest, force=force)
     if failed:
         path, why = failed[0]
         raise InputError(f"{len(failed)} of {len(plan)} files were not exported; first: {path}: {why}")
@@ -365,14 +365,14 @@ def _publish(target: Path, source: Path, write) -> str:
     return digest
 
 
-def _write_lists(table, dest: Path) -> None:
+def _write_lists(table, dest: Path, *, force: bool) -> None:
     """``dest/<split folder>.csv`` per split: ``path`` (relative to dest), ``label``."""
     from .manifest import write_text
 
     for _, rows in table.groupby("split", sort=False):
         folder = rows["target"].iloc[0].split("/", 1)[0]
         text = rows[["target", "label"]].rename(columns={"target": "path"}).to_csv(index=False, lineterminator="\n")
-        write_text(dest / f"{folder}.csv", text)
+        write_text(dest / f"{folder}.csv", text, force=force, ledger=False)
 
 
 # ---------------------------------------------------------------- location data

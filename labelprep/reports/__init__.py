@@ -36,15 +36,16 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
         The manifest's sidecar (:func:`labelprep.manifest.read_sidecar`): the seed, root and stage
         options it records are shown.
     force : bool
-        Replace output files that labelprep did not write (reports are recognised by the word
-        "labelprep" near their start).
+        Replace output files that labelprep did not write (see
+        :func:`labelprep.manifest.guard_output`).
 
     Returns
     -------
     dict
         The summary, JSON-able: ``format``, ``version``, ``files``, ``in_split``, ``left_out``,
         ``splits``, ``classes``, ``balance`` (:func:`labelprep.balance.by_split`), ``issues``,
-        ``near_duplicates``, ``seed``, ``root``, ``options``.
+        ``near_duplicates``, ``split_diagnosis`` (:func:`labelprep.split_diagnosis.diagnose_split`,
+        None before a split), ``seed``, ``root``, ``options``.
 
     Examples
     --------
@@ -73,20 +74,20 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
 
     for target in (json, markdown, html):
         if target is not None:
-            guard_output(target, force=force, marker=b"labelprep")
+            guard_output(target, force=force)  # all of them before the work
     m = _complete(manifest)
     summary = _summary(m, meta or {})
 
     if json is not None:
-        write_text(json, to_json(summary))
+        write_text(json, to_json(summary), force=force)
     if markdown is not None:
         from .text import markdown as render_markdown
 
-        write_text(markdown, render_markdown(summary))
+        write_text(markdown, render_markdown(summary), force=force)
     if html is not None:
         from .page import render
 
-        write_text(html, render(m, summary, root=root))
+        write_text(html, render(m, summary, root=root), force=force)
     return summary
 
 
@@ -153,6 +154,7 @@ def _summary(m, meta: dict) -> dict:
         "balance": balance,
         "issues": _issues(m),
         "near_duplicates": _near_duplicates(m),
+        "split_diagnosis": _split_diagnosis(m, meta) if in_split else None,
         "seed": _seed(meta),
         "root": meta.get("root"),
         "options": _jsonable(meta.get("stages", {})),
@@ -251,6 +253,20 @@ def _weakest(gid, row) -> dict:
     return {"cluster": int(gid), "size": int(row["size"]), "path": row["weakest_path"],
             "linked_to": row["weakest_to"], "kind": row["weakest_kind"],
             "likeness": number(row["weakest_likeness"]), "blemish": number(row["weakest_blemish"])}
+
+
+def _split_diagnosis(m, meta: dict) -> dict:
+    """The split's diagnosis, against the ratios and folds the sidecar records (else the defaults)."""
+    from ..defaults import RATIOS
+    from ..split_diagnosis import diagnose_split
+
+    options = {}
+    for stage in ("prepare", "split"):  # the split stage, when run last, wrote the split
+        recorded = meta.get("stages", {}).get(stage, {})
+        recorded = recorded.get("options", recorded) if isinstance(recorded, dict) else {}
+        if isinstance(recorded, dict) and recorded.get("ratios"):
+            options = recorded
+    return diagnose_split(m, ratios=tuple(options.get("ratios", RATIOS)), folds=options.get("folds"))
 
 
 def _seed(meta: dict):
