@@ -24,6 +24,7 @@ from __future__ import annotations
 from . import codes
 from .defaults import MAX_DISTANCE
 from .errors import ParameterError
+from .validation import check_manifest
 from .hashing import HASH_COLUMNS, INNER_COLUMN, MIRROR_COLUMN
 
 DEFAULT_MAX_DISTANCE = MAX_DISTANCE
@@ -103,8 +104,6 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     import numpy as np
     import pandas as pd
 
-    if not isinstance(manifest, pd.DataFrame):
-        raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
     _check_options(manifest, max_distance, flips, progress, keep_conflicts=keep_conflicts)
 
     from .manifest import coerce
@@ -194,10 +193,6 @@ def verified_links(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, flips=True, p
     >>> verified_links(m)[["first", "second", "bits", "kind"]].values.tolist()
     [[0, 1, 1, 'near']]
     """
-    import pandas as pd
-
-    if not isinstance(manifest, pd.DataFrame):
-        raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
     _check_options(manifest, max_distance, flips, progress)
     from .manifest import coerce
 
@@ -227,9 +222,7 @@ def near_links(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, flips=True, progr
 def _check_options(manifest, max_distance, flips, progress, **flags):
     import numpy as np
 
-    missing = [c for c in ("path", "sha256") if c not in manifest.columns]
-    if missing:
-        raise ParameterError(f"manifest lacks column(s) {', '.join(missing)}")
+    check_manifest(manifest, ["path", "sha256"], hint="make it with labelprep scan")
     if isinstance(max_distance, bool) or not isinstance(max_distance, (int, np.integer)):
         raise TypeError(f"max_distance must be an int, got {type(max_distance).__name__}")
     if not 0 <= max_distance <= 64:

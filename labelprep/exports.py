@@ -19,6 +19,7 @@ from pathlib import Path, PurePosixPath
 
 from . import sources
 from .errors import InputError, OutputExistsError, ParameterError
+from .validation import check_manifest
 
 MODES = ("hardlink", "symlink", "copy")
 SPLIT_ORDER = ("train", "val", "test")
@@ -100,9 +101,7 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
     if not isinstance(dest, (str, os.PathLike)):
         raise TypeError(f"dest must be a path (str or Path), got {type(dest).__name__}")
     sources.check_root(root)
-    missing = [c for c in ("path", "label", "split", "sha256") if c not in manifest.columns]
-    if missing:
-        raise InputError(f"the manifest has no {', '.join(map(repr, missing))} column; run scan and split first")
+    check_manifest(manifest, ["path", "label", "split", "sha256"], hint="run scan and split first")
     dest = Path(dest)
 
     plan = plan_targets(manifest)

@@ -38,7 +38,7 @@ def prepare(root, out, *, force=False, progress=None, **options):
     from .checks import check
     from .clusters import group
     from .reports import report
-    from .scanner import journal_path, previous_manifest, scan
+    from .scanner import resuming, scan
     from .sources import describe, name_roots, roots_of
     from .splits import split
 
@@ -51,20 +51,18 @@ def prepare(root, out, *, force=False, progress=None, **options):
     target = out / MANIFEST_NAME
     for path in (target, out / REPORT_JSON, out / REPORT_HTML):  # refuse before the work, not after it
         manifest.guard_output(path, force=force)
-    previous = previous_manifest(target, root=root, max_pixels=chosen["max_pixels"])
-    journal = journal_path(target)
     keep_from = chosen["keep_from"]
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
 
-    m = scan(root, previous=previous, journal=journal, progress=progress, **spec.for_stage("scan", chosen))
-    scan_facts = m.attrs.get("scan", {})
-    m = check(m, **spec.for_stage("check", chosen))
-    m = group(m, progress=progress, **spec.for_stage("group", chosen))
-    m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
-    meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts)}
-    manifest.write(m, target, meta=meta, force=True)
-    journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
+    with resuming(target, root=root, max_pixels=chosen["max_pixels"]) as (previous, journal):
+        m, scan_facts = scan(root, previous=previous, journal=journal, progress=progress, return_facts=True,
+                             **spec.for_stage("scan", chosen))
+        m = check(m, **spec.for_stage("check", chosen))
+        m = group(m, progress=progress, **spec.for_stage("group", chosen))
+        m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
+        meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts)}
+        manifest.write(m, target, meta=meta, force=True, new_sidecar=True)
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
                      meta=manifest.read_sidecar(target), force=force)
     return m, summary
