@@ -496,8 +496,9 @@ def _stars(rows, sha, links, separate):
     anchor = np.arange(n)
     chosen = np.full(n, -1)  # the link joining a member to its anchor
     placed = np.zeros(n, dtype=bool)
-    for u in np.lexsort((np.arange(n), -degree)).tolist():
-        if placed[u] or degree[u] == 0:
+    order = np.lexsort((np.arange(n), -degree))
+    for u in order[degree[order] > 0].tolist():
+        if placed[u]:
             continue
         placed[u] = True
         members = {u}
@@ -509,12 +510,10 @@ def _stars(rows, sha, links, separate):
             anchor[v] = u
             chosen[v] = via[k]
             members.add(v)
-    kinds = links["kind"].to_numpy(dtype=object)
-    kind = np.where(chosen >= 0, kinds[np.maximum(chosen, 0)] if len(kinds) else "", "").astype(object)
-    likeness = np.where(chosen >= 0, links["likeness"].astype(float).to_numpy()[np.maximum(chosen, 0)]
-                        if len(kinds) else np.nan, np.nan)
-    blemish = np.where(chosen >= 0, links["blemish"].astype(float).to_numpy()[np.maximum(chosen, 0)]
-                       if len(kinds) else np.nan, np.nan)
+    pick = np.where(chosen >= 0, chosen, len(links))  # rows with no link read a blank past the end
+    kind = np.append(links["kind"].to_numpy(dtype=object), "")[pick]
+    likeness = np.append(links["likeness"].astype(float).to_numpy(), np.nan)[pick]
+    blemish = np.append(links["blemish"].astype(float).to_numpy(), np.nan)[pick]
     # a copy of a representative is linked to it (exact); the representative carries the star link
     copy = rep != np.arange(n)
     row_anchor = np.where(copy, rep, anchor[rep])
