@@ -46,7 +46,7 @@ _STAGE = "group"
 
 
 def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, flips=True,
-          links=None, progress=None, cluster=None):
+          links=None, progress=None, cluster=None, decisions=None):
     """Cluster exact and near-duplicates and mark them in a new manifest.
 
     Parameters
@@ -79,6 +79,11 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     cluster : str, optional
         Address of a Dask scheduler: the near-pair search runs as tasks on its workers
         (:func:`labelprep.neighbors.radius_pairs`); the same result.
+    decisions : pandas.DataFrame, optional
+        A decisions table (:func:`labelprep.decisions.load`): its ``join`` and ``separate``
+        pairs (``path`` and ``value``) are applied as ``links`` are; pairs naming a path not in
+        the manifest are skipped (:func:`labelprep.decisions.findings` reports them). The row
+        decisions are applied around this stage by :func:`labelprep.decisions.apply`.
 
     Returns
     -------
@@ -114,7 +119,7 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     n = len(rows)
     sha = _text(rows, "sha256")
     evidence = _evidence(rows, int(max_distance), flips, progress, cluster)
-    joins, separate = _decisions(rows, links)
+    joins, separate = _decisions(rows, _with_decisions(rows, links, decisions))
     star = _stars(rows, sha, pd.concat([evidence, joins], ignore_index=True), separate)
     cluster_id = star["cluster"]
     size = np.bincount(cluster_id, minlength=n)[cluster_id]
@@ -424,6 +429,20 @@ def _low_detail(rows):
     if "detail" not in rows.columns:
         return np.zeros(len(rows), dtype=bool)
     return rows["detail"].astype("Float64").fillna(1.0).to_numpy(dtype=float) < LOW_DETAIL
+
+
+def _with_decisions(rows, links, decisions):
+    """``links`` with the pair decisions of a decisions table added (known paths only)."""
+    import pandas as pd
+
+    if decisions is None or decisions.empty:
+        return links
+    pairs = decisions[decisions["action"].isin(("join", "separate"))]
+    known = set(rows["path"].astype(str))
+    pairs = pairs[pairs["path"].astype(str).isin(known) & pairs["value"].astype(str).isin(known)]
+    given = pd.DataFrame({"path": pairs["path"].astype(str).to_numpy(), "other": pairs["value"].astype(str).to_numpy(),
+                          "action": pairs["action"].to_numpy()})
+    return given if links is None else pd.concat([links[["path", "other", "action"]], given], ignore_index=True)
 
 
 def _decisions(rows, links):

@@ -46,6 +46,7 @@ _CODE_LIST = [
     IssueCode("mirrored-label", WARNING, "group", "a left-right mirrored copy of a file under another label: right if mirroring changes the class (then group without mirror matching), otherwise one label is wrong"),
     IssueCode("label-conflict", ERROR, "group", "its near-duplicate cluster holds more than one label"),
     IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
+    IssueCode("dropped", ERROR, "decisions", "a drop decision in the decisions file leaves the file out of the split"),
 ]
 
 CODES: dict[str, IssueCode] = {c.code: c for c in _CODE_LIST}
