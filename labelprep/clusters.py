@@ -495,6 +495,12 @@ def _stars(rows, sha, links, separate):
     # byte-identical rows act as one: the first of them (path order) stands for the others
     _, first, inverse = np.unique(pd.factorize(sha)[0], return_index=True, return_inverse=True)
     rep = np.where(sha == "", np.arange(n), first[inverse])
+    # each copy is linked to the first of its bytes: separating a copy from that first one cuts
+    # it off (separating two later copies cuts no link, and they stay together through the first)
+    for x, y in zip(separate[0].tolist(), separate[1].tolist()):
+        if rep[x] == rep[y] and x != y and rep[x] in (x, y):
+            other = y if rep[x] == x else x
+            rep[other] = other
     a = rep[links["first"].to_numpy(dtype=np.int64)]
     b = rep[links["second"].to_numpy(dtype=np.int64)]
     apart = set()
