@@ -549,7 +549,7 @@ def _stars(rows, sha, links, separate):
 
 
 def _components(n, links):
-    """Connected components (union-find over the links): one label per row, 0..k-1."""
+    """Connected components of the links (scipy.sparse.csgraph): one label per row, 0..k-1."""
     import numpy as np
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
