@@ -116,7 +116,7 @@ def main():
 
     import labelprep
     from labelprep.embedding import features_for
-    from labelprep.scenes import scene_links
+    from labelprep.scenes import as_links, mark, scene_links
 
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp) / "photos"
@@ -133,7 +133,7 @@ def main():
         embed_s = time.perf_counter() - start
         start = time.perf_counter()
         links = scene_links(m, root, vectors, flips=args.flips, jobs=args.jobs)
-        learned = labelprep.group(m, flips=args.flips, scene_links=links)
+        learned = mark(labelprep.group(m, flips=args.flips, links=as_links(m, links)), links)
         scene_s = time.perf_counter() - start
         inliers = learned["scene_inliers"].dropna().astype(int)
         print(f"same-scene rows: {int(learned['issues'].str.contains('same-scene').sum())}, "

@@ -25,6 +25,7 @@ _EXPORTS = {
     "check": "checks",
     "group": "clusters",
     "vet": "labelcheck",
+    "verified_links": "clusters",
     "split": "splits",
     "split_summary": "splits",
     "diagnose_split": "split_diagnosis",

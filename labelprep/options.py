@@ -71,13 +71,15 @@ class Option:
     recorded: bool = True
     record_if_set: bool = False
     short: str | None = None
+    negatable: bool = False  # a flag that is on by default: also --no-name to turn it off
 
     @property
     def flag(self) -> str:
         return "--" + self.name.replace("_", "-")
 
     def decorator(self) -> Callable:
-        names = [self.flag] + ([self.short] if self.short else [])
+        flag = f"{self.flag}/--no-{self.flag[2:]}" if self.negatable else self.flag
+        names = [flag] + ([self.short] if self.short else [])
         kwargs = dict(self.click)
         if kwargs.get("is_flag"):
             kwargs.setdefault("default", bool(self.default))
@@ -140,10 +142,11 @@ SPEC = (
         help="Hamming radius on the 64-bit perceptual hash for near-duplicates.")),
     Option("keep_conflicts", ("group",), False, dict(
         is_flag=True, help="Keep clusters that span labels in the split (default: leave them out).")),
-    Option("flips", ("group",), False, dict(
-        is_flag=True,
-        help="Also match left-right mirrored copies (off by default: some labels, such as "
-             "left/right signs, change when mirrored).")),
+    Option("flips", ("group",), True, dict(
+        is_flag=True, show_default=True,
+        help="Match left-right mirrored copies too (a mirrored copy across splits is a leak); "
+             "--no-flips for labels that change when mirrored, such as left/right signs."),
+        negatable=True),
     Option("features", ("features",), defaults.FEATURES, dict(
         type=click.Choice(["auto", "sketch", "model"]),
         help="What vet and the same-scene check compare: 'model' runs a pretrained CNN "

@@ -63,8 +63,8 @@ def prepare(root, out, *, force=False, progress=None, decisions=None, **options)
                              **spec.for_stage("scan", chosen))
         m = check(m, **spec.for_stage("check", chosen))
         learned = _learned(m, roots_of(where), target, chosen, progress)
-        m = group_and_split(m, decided, group_options={"progress": progress, **spec.for_stage("group", chosen),
-                                                       "scene_links": learned["scene_links"]},
+        m = group_and_split(m, decided, group_options={"progress": progress, **spec.for_stage("group", chosen)},
+                            scene_links=learned["scene_links"],
                             split_options={"progress": progress, **spec.for_stage("split", chosen),
                                            "keep_from": keep_from},
                             vet_options={"embeddings": learned["embeddings"], **spec.for_stage("vet", chosen)})
@@ -88,17 +88,26 @@ def load_decisions(folder, decisions=None):
     return load(Path(folder) / FILE_NAME, required=False)
 
 
-def group_and_split(m, decisions, *, group_options: dict, split_options: dict, vet_options=None):
+def group_and_split(m, decisions, *, group_options: dict, split_options: dict, vet_options=None,
+                    scene_links=None):
     """The group, vet (when ``vet_options`` are given) and split stages with ``decisions``
     honoured: row decisions before each stage (a relabel changes conflicts and strata) and after
-    it (a keep mutes the codes it found), pair decisions inside group. ``attrs["vet"]`` of the
-    result holds the vet's facts."""
+    it (a keep mutes the codes it found), pair decisions inside group. ``scene_links``
+    (:func:`labelprep.scenes.scene_links`) join the clusters as extra verified links.
+    ``attrs["vet"]`` of the result holds the vet's facts."""
     from .clusters import group
     from .decisions import apply
     from .labelcheck import vet
     from .splits import split
 
-    m = apply(group(apply(m, decisions), decisions=decisions, **group_options), decisions)
+    if scene_links is None:
+        m = apply(group(apply(m, decisions), decisions=decisions, **group_options), decisions)
+    else:
+        from .scenes import as_links, mark
+
+        m = apply(m, decisions)
+        m = apply(mark(group(m, decisions=decisions, links=as_links(m, scene_links), **group_options),
+                       scene_links), decisions)
     facts = None
     if vet_options is not None:
         m = vet(m, **vet_options)
@@ -154,8 +163,8 @@ def rerun(out, *, decisions=None, progress=None):
     learned = _learned(m, roots_of(meta), target,
                        spec.resolve({k: v for k, v in recorded.items() if k in known}, *spec.STAGES), progress)
     m = group_and_split(m, chosen,
-                        group_options={"progress": progress, **spec.for_stage("group", recorded),
-                                       "scene_links": learned["scene_links"]},
+                        group_options={"progress": progress, **spec.for_stage("group", recorded)},
+                        scene_links=learned["scene_links"],
                         split_options={"progress": progress, **split_options},
                         vet_options={"embeddings": learned["embeddings"], **spec.for_stage("vet", recorded)})
     prepare_stage = {**meta["stages"]["prepare"], "decisions": digest_of(chosen)}

@@ -12,9 +12,10 @@ keypoint area (their convex hulls), or when :data:`SURE_INLIERS` agree: drawn sh
 across different pictures (the demo's starfish) match in one small region only. With ``flips`` the mirror image of
 one file is matched too. Needs opencv-python-headless (the ``features`` extra).
 
-:func:`scene_links` returns the verified links with their evidence; :func:`merge` is the hook
-through which :func:`labelprep.group` joins them to the near-duplicate clusters and writes the
-``same-scene`` code and the ``scene_similarity``/``scene_inliers`` columns.
+:func:`scene_links` returns the verified links with their evidence; :func:`as_links` hands them
+to :func:`labelprep.group` as extra verified links (its ``links=``: they join the star clusters
+under the same no-chaining rule, ``link_kind`` ``given``), and :func:`mark` then writes the
+``same-scene`` code and the ``scene_similarity``/``scene_inliers`` columns on the rows so joined.
 """
 
 from __future__ import annotations
@@ -185,36 +186,52 @@ def _hull_share(points, everything):
     return cv2.contourArea(cv2.convexHull(points)) / whole if whole > 0 and len(points) >= 3 else 0.0
 
 
-def merge(links, order, hash_cluster):
-    """The hook :func:`labelprep.group` calls: ``links`` in its path-sorted row positions.
+def as_links(manifest, links):
+    """``links`` as the extra verified links :func:`labelprep.group` takes (``links=``): one
+    ``join`` row per pair, its embedding similarity as the likeness; None when there is none."""
+    import pandas as pd
 
-    Parameters
-    ----------
-    links : Links
-        As :func:`scene_links` returns, in the caller's input row positions.
-    order : ndarray
-        ``order[k]`` is the input position of the k-th row in path order.
-    hash_cluster : ndarray
-        Component of each path-ordered row from exact and hash links.
+    if links is None or not len(links.inliers):
+        return None
+    paths = manifest["path"].to_numpy(dtype=object)
+    return pd.DataFrame({"path": paths[links.pairs[0]], "other": paths[links.pairs[1]],
+                         "action": "join", "likeness": links.similarity})
 
-    Returns
-    -------
-    (ndarray, ndarray, ndarray, ndarray)
-        The links (2, m) in path order, a mask of rows joined by a link that hashes did not make
-        (``same-scene``), and per row the similarity and inliers of its strongest such link (NaN
-        and -1 elsewhere).
-    """
+
+def mark(grouped, links):
+    """``grouped`` (what :func:`labelprep.group` returned with :func:`as_links`) with the
+    ``same-scene`` code and the ``scene_similarity``/``scene_inliers`` evidence on the rows whose
+    link to their anchor is a same-scene link (``link_kind`` ``given``)."""
     import numpy as np
+    import pandas as pd
 
-    n = len(order)
-    position = np.empty(n, dtype=np.int64)
-    position[order] = np.arange(n)
-    pairs = position[np.asarray(links.pairs, dtype=np.int64)] if len(links.inliers) else np.zeros((2, 0), np.int64)
-    new = hash_cluster[pairs[0]] != hash_cluster[pairs[1]] if pairs.size else np.zeros(0, dtype=bool)
+    from . import codes
+
+    out = grouped.drop(columns=["scene_similarity", "scene_inliers"], errors="ignore")
+    n = len(out)
     similarity = np.full(n, np.nan)
     inliers = np.full(n, -1, dtype=np.int64)
-    for (a, b), sim, count in zip(pairs[:, new].T, np.asarray(links.similarity)[new], np.asarray(links.inliers)[new]):
-        for row in (a, b):
-            if count > inliers[row]:
-                inliers[row], similarity[row] = count, sim
-    return pairs, inliers >= 0, similarity, inliers
+    if links is not None and len(links.inliers):
+        paths = out["path"].to_numpy(dtype=object)
+        position = {p: i for i, p in enumerate(paths)}
+        evidence = {}
+        for a, b, sim, count in zip(paths[links.pairs[0]], paths[links.pairs[1]], links.similarity, links.inliers):
+            evidence[(a, b)] = evidence[(b, a)] = (sim, count)
+        given = out["link_kind"].to_numpy(dtype=object) == "given"
+        anchors = out["linked_to"].to_numpy(dtype=object)
+        for i in np.flatnonzero(given):
+            found = evidence.get((paths[i], anchors[i]))
+            if found is not None:
+                similarity[i], inliers[i] = found
+                similarity[position[anchors[i]]] = max(np.nan_to_num(similarity[position[anchors[i]]]), found[0])
+    same = inliers >= 0
+    cells = out["issues"].to_numpy(dtype=object).copy()
+    for i in range(n):
+        if same[i] or "same-scene" in cells[i]:
+            kept = [c for c in codes.parse(cells[i]) if c != "same-scene"]
+            cells[i] = codes.join(kept + (["same-scene"] if same[i] else []))
+    out["issues"] = pd.Series(cells, index=out.index, dtype=object)
+    out["scene_similarity"] = pd.array(np.where(same, similarity, np.nan), dtype="Float64")
+    out["scene_inliers"] = pd.array(np.where(same, inliers, 0), dtype="Int64")
+    out.loc[~same, "scene_inliers"] = pd.NA
+    return out

@@ -47,11 +47,16 @@ def scanned(hard_tree, tmp_path_factory):
     return m, vectors
 
 
+def _grouped(m, links, **options):
+    """group with the same-scene links as its extra verified links, then their evidence."""
+    return scenes.mark(labelprep.group(m, links=scenes.as_links(m, links), **options), links)
+
+
 class TestSceneLinks:
     def test_hard_edits_join_their_original_and_distinct_tiles_stay_apart(self, hard_tree, scanned):
         m, vectors = scanned
         links = scenes.scene_links(m, hard_tree, vectors, jobs=1)
-        out = labelprep.group(m, scene_links=links)
+        out = _grouped(m, links, flips=False)
         dup = dict(zip(out["path"], out["dup_group"]))
         for name in ("astronaut", "coffee", "rocket"):
             assert dup[f"{name}/rot20.jpg"] == dup[f"{name}/original.png"] == dup[f"{name}/crop30.jpg"]
@@ -61,18 +66,18 @@ class TestSceneLinks:
 
     def test_evidence_and_code_on_rows_hashes_missed(self, hard_tree, scanned):
         m, vectors = scanned
-        out = labelprep.group(m, scene_links=scenes.scene_links(m, hard_tree, vectors, jobs=1))
+        out = _grouped(m, scenes.scene_links(m, hard_tree, vectors, jobs=1))
         row = out.set_index("path").loc["rocket/rot20.jpg"]
         assert "same-scene" in row["issues"]
         assert row["scene_inliers"] >= scenes.MIN_INLIERS
         assert 0 < row["scene_similarity"] <= 1
-        plain = labelprep.group(m)
+        plain = labelprep.group(m, flips=False)
         assert "scene_inliers" not in plain.columns
         assert pd.isna(plain.set_index("path").loc["rocket/rot20.jpg", "dup_group"])  # hashes miss it
 
     def test_flips_match_the_mirror_image(self, hard_tree, scanned):
         m, vectors = scanned
-        out = labelprep.group(m, flips=True, scene_links=scenes.scene_links(m, hard_tree, vectors, flips=True, jobs=1))
+        out = _grouped(m, scenes.scene_links(m, hard_tree, vectors, flips=True, jobs=1), flips=True)
         dup = dict(zip(out["path"], out["dup_group"]))
         assert dup["astronaut/mirror.jpg"] == dup["astronaut/original.png"]
 
