@@ -45,7 +45,7 @@ _CODE_LIST = [
     IssueCode("near-copy", WARNING, "group", "the same picture as another file that is not byte-identical to it: proposed by the perceptual hashes, confirmed on the pixels"),
     IssueCode("mirrored-label", WARNING, "group", "a left-right mirrored copy of a file under another label: right if mirroring changes the class (then group without mirror matching), otherwise one label is wrong"),
     IssueCode("label-conflict", ERROR, "group", "its near-duplicate cluster holds more than one label"),
-    IssueCode("same-scene", WARNING, "group", "the same picture as another file under a heavier edit (crop, rotation, reframing, colour shift): proposed by learned features, confirmed by matching keypoints under one geometric transform"),
+    IssueCode("same-scene", WARNING, "group", "linked to its cluster by learned features confirmed by keypoints under one geometric transform: the same picture, also under edits hashes miss (rotation, heavy crop, reframing, letterbox)"),
     IssueCode("suspect-label", WARNING, "vet", "its nearest neighbours in feature space mostly carry one other label, named in likely_label"),
     IssueCode("lone-image", WARNING, "vet", "far from every other file in feature space (oddness at or above the limit): off-topic, broken or of a class of its own"),
     IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
