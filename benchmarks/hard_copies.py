@@ -11,7 +11,7 @@ labelprep itself: once as the default run without the extra (the reference line:
 perceptual hashes) and once with the learned features (embedding neighbours + keypoint check).
 Two files are "found" when they share a dup_group, which is what the split keeps together.
 
-Run:  python benchmarks/hard_copies.py [--jobs 2] [--flips]
+Run:  python benchmarks/hard_copies.py [--jobs 2] [--no-flips]
 """
 
 from __future__ import annotations
@@ -111,7 +111,8 @@ def score(m, family):
 def main():
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--jobs", type=int, default=2)
-    parser.add_argument("--flips", action="store_true", help="also match mirror images (group --flips)")
+    parser.add_argument("--no-flips", dest="flips", action="store_false",
+                        help="do not match mirror images (group --no-flips; matching them is the default)")
     args = parser.parse_args()
 
     import labelprep
