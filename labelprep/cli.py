@@ -22,8 +22,21 @@ class _Failure(click.ClickException):
         self.exit_code = exit_code
 
 
+class _Stopped(BaseException):
+    """A signal ended the command (raised where it arrived, so every finally block runs)."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
 def _stop(signum, frame):
-    raise SystemExit(128 + signum)  # the shell's status for death by that signal
+    raise _Stopped(signum)
+
+
+# what an interrupted command says; outputs are atomic and a scan keeps its journal
+_RESUME = ("stopped by {what}: nothing half-written was left; run the same command again to "
+           "resume (files already decoded are not decoded again)")
 
 
 class _Group(click.Group):
@@ -38,10 +51,38 @@ class _Group(click.Group):
         try:
             return super().invoke(ctx)
         except LabelprepError as exc:
-            raise _Failure(str(exc), exc.exit_code) from exc
+            raise _Failure(_flag_words(str(exc), ctx), exc.exit_code) from exc
+        except (KeyboardInterrupt, _Stopped) as exc:
+            # the shell's status for death by a signal is 128 + its number (130 Ctrl-C, 143 kill)
+            signum = getattr(exc, "signum", signal.SIGINT)
+            click.echo(_RESUME.format(what="Ctrl-C" if signum == signal.SIGINT else "SIGTERM"), err=True)
+            raise SystemExit(128 + signum) from None
         finally:
             if main_thread:
                 signal.signal(signal.SIGTERM, previous)
+
+
+def _flag_words(message: str, ctx) -> str:
+    """``message`` with the library's parameter names written as the options the user typed:
+    ``seed must be 0 or more, got seed=-5`` -> ``--seed must be 0 or more, got --seed -5``."""
+    import re
+
+    sub = ctx.invoked_subcommand and ctx.command.get_command(ctx, ctx.invoked_subcommand)
+    flags = {param.name: max(param.opts, key=len) for param in getattr(sub, "params", [])
+             if isinstance(param, click.Option)}
+    if not flags:
+        return message
+
+    def assigned(match):  # name=value anywhere
+        name, value = match.group(1), match.group(2).strip("'\"")
+        return f"{flags[name]} {value}" if name in flags else match.group(0)
+
+    def leading(match):  # a name opening the message or a clause: "seed must be ..."
+        name = match.group(2)
+        return match.group(1) + flags[name] if name in flags else match.group(0)
+
+    message = re.sub(r"(?<![\w\-./'])([a-z][a-z_]*)=('[^']*'|\"[^\"]*\"|[^\s,;)]+)", assigned, message)
+    return re.sub(r"(^|; )([a-z][a-z_]*)(?= )", leading, message)
 
 
 def _stack(*decorators):
@@ -74,6 +115,10 @@ _force = click.option("--force", is_flag=True,
                       help="Replace outputs that labelprep did not write (never touches sources).")
 _jobs = click.option("--jobs", "-j", type=click.IntRange(min=0), default=0, show_default=True,
                      help="Worker processes for decoding; 0 = every core.")
+_cluster_group = click.option("--cluster", metavar="ADDRESS", default=None,
+                              help="Run the near-pair search on the Dask cluster whose scheduler is "
+                                   "at ADDRESS (e.g. tcp://scheduler-host:8786); the same clusters "
+                                   "as a local run. Needs labelprep[cluster].")
 _cluster = click.option("--cluster", metavar="ADDRESS", default=None,
                         help="Run the work on the Dask cluster whose scheduler is at ADDRESS "
                              "(e.g. tcp://scheduler-host:8786) instead of local processes: the "
@@ -133,9 +178,10 @@ SPLIT_OPTIONS = _stack(
     click.option("--keep-from", type=_existing_file, default=None, metavar="OLD_MANIFEST",
                  help="Keep every file already assigned in this manifest where it was; place only new files."),
 )
-_fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="never",
+_fail_on = click.option("--fail-on", type=click.Choice(["empty", "error", "warning", "never"]), default="never",
                         show_default=True,
-                        help="Exit with status 1 when any file has an issue of this severity or worse.")
+                        help="Exit with status 1: empty when a split or a class ends up with no file; "
+                             "error also when any file has an error; warning also on warnings.")
 
 
 def _progress(quiet: bool):
@@ -193,7 +239,8 @@ def scan(roots, output, layout, labels, group_pattern, group_by_source, include_
     modification time); an interrupted scan resumes from the journal it keeps beside MANIFEST.
     """
     from . import manifest
-    from .scanner import journal_path, previous_manifest, scan as run
+    from .advice import scan_notes
+    from .scanner import journal_path, own_files, previous_manifest, scan as run
     from .sources import describe, name_roots
 
     manifest.guard_output(output, force=force)
@@ -204,7 +251,7 @@ def scan(roots, output, layout, labels, group_pattern, group_by_source, include_
     m = run(root, layout=layout, labels=_labels(labels), group_pattern=group_pattern,
             group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs,
             max_pixels=max_pixels, previous=previous_manifest(output, root=root, max_pixels=max_pixels),
-            journal=journal, progress=_progress(quiet), cluster=cluster)
+            journal=journal, progress=_progress(quiet), cluster=cluster, exclude=own_files(output))
     facts = m.attrs.get("scan", {})
     options = {"layout": layout, "labels": _labels(labels), "group_pattern": group_pattern,
                "include_hidden": include_hidden, "max_pixels": max_pixels}
@@ -216,10 +263,8 @@ def scan(roots, output, layout, labels, group_pattern, group_by_source, include_
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
                 f"{facts.get('reused', 0)} unchanged), layout {_layouts(facts.get('layout'))} -> {output}")
-    if facts.get("skipped_junk"):
-        click.echo(f"skipped {facts['skipped_junk']} hidden or system files "
-                   f"(e.g. {', '.join(facts['skipped_examples'][:3])}); --include-hidden indexes them",
-                   err=True)
+    for line in scan_notes(facts):
+        click.echo(line, err=True)
 
 
 def _labels(values: tuple):
@@ -239,14 +284,21 @@ def _print_issues(m, quiet: bool, examples: int = 3):
         _say(quiet, line)
 
 
-def _gate(m, fail_on: str):
+def _gate(m, fail_on: str, empty=()):
     from .codes import gate
     from .errors import GateFailed
 
-    failing = gate(m["issues"], fail_on)
+    failing = gate(m["issues"], "never" if fail_on == "empty" else fail_on)
     if failing:
         listed = ", ".join(f"{c} ({n})" for c, n in failing.items())
         raise GateFailed(f"--fail-on {fail_on}: {listed}")
+    if empty and fail_on != "never":
+        raise GateFailed(f"--fail-on {fail_on}: {empty[0]}")
+
+
+def _warn(lines):
+    for line in lines:
+        click.echo(line if line.startswith(("warning: ", "note: ")) else f"warning: {line}", err=True)
 
 
 @main.command()
@@ -272,7 +324,7 @@ def check(manifest_path, fail_on, quiet, **limits):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @GROUP_OPTIONS
-@_cluster
+@_cluster_group
 @_quiet
 def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
     """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""
@@ -297,6 +349,7 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
     path) keep their split and only new files are placed.
     """
+    from .advice import empty_parts, keep_lines
     from .splits import split as run, split_summary
 
     old = _read(keep_from) if keep_from is not None else None
@@ -309,11 +362,19 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
     _say(quiet, "  ".join(sizes + [f"left out: {summary['left_out']}"]))
     if old is not None:
-        _say(quiet, f"kept {summary['kept']} files where they were, placed {summary['placed']} new, "
-                    f"moved {summary['moved']}, dropped {summary['dropped']} (now with an error)")
-    for name, labels in summary["missing"].items():
-        _say(quiet, f"warning: {name} has no file of class {', '.join(labels)} "
-                    "(too few groups or clusters to reach every split)", err=True)
+        _say(quiet, keep_lines(summary, m)[0])
+        _warn(keep_lines(summary, m)[1:])
+    _warn(_split_warnings(summary, empty_parts(m, ratios=ratios, folds=folds), folds))
+
+
+def _split_warnings(summary: dict, empty: list, folds) -> list:
+    """Empty splits and classes, classes missing from a split, folds thinner than a class."""
+    from .advice import fold_warnings
+
+    lines = list(empty)
+    lines += [f"{name} has no file of class {', '.join(labels)} (too few groups or clusters to "
+              "reach every split)" for name, labels in summary["missing"].items()]
+    return lines + fold_warnings(summary, folds)
 
 
 @main.command()
@@ -407,6 +468,11 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
     methods = written["method"].value_counts()  # a hardlink falls back to a copy across filesystems
     _say(quiet, f"{len(written)} files placed under {dest}: "
                 + ", ".join(f"{n} {method}" for method, n in methods.items()))
+    classes = set(written["label"])
+    for name, rows in written.groupby("split", sort=False):
+        if set(rows["label"]) != classes:
+            _warn([f"{name} has no folder for {', '.join(sorted(classes - set(rows['label'])))}: read "
+                   f"every split with the class list {dest / 'classes.txt'} so the indices match"])
 
 
 @main.command()
@@ -417,6 +483,9 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @CHECK_OPTIONS
 @GROUP_OPTIONS
 @SPLIT_OPTIONS
+@click.option("--resplit", is_flag=True,
+              help="On a ROOT/<train|val|test>/<label>/ tree, split anew; by default every file "
+                   "stays in its folder's split and only files outside those folders are placed.")
 @_cluster
 @_fail_on
 @_force
@@ -424,17 +493,21 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 def prepare(roots, out, fail_on, quiet, labels, **options):
     """Scan, check, group, split and report each ROOT in one go, into DIR.
 
-    A ROOT is a folder or an archive; with several, each is a source (see scan).
+    A ROOT is a folder or an archive; with several, each is a source (see scan). Nothing in DIR
+    is indexed, nor a label table stored inside ROOT. A tree of train/val/test folders keeps its
+    split unless --resplit.
     """
     from .pipeline import prepare as run
 
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, labels=_labels(labels), progress=_progress(quiet), **options)
-    _print_outcome(m, summary, out, quiet)
-    _gate(m, fail_on)
+    empty = _print_outcome(m, summary, out, quiet, ratios=options["ratios"], folds=options["folds"])
+    _gate(m, fail_on, empty)
 
 
-def _print_outcome(m, summary, out: Path, quiet: bool):
+def _print_outcome(m, summary, out: Path, quiet: bool, *, ratios=None, folds=None) -> list:
+    """The tables, issues and notes of a prepare run; returns the empty-split warnings."""
+    from .advice import empty_parts, keep_lines, scan_notes
     from .reports import terminal_table
 
     # the issues are listed once, with their counts and first files, after the tables
@@ -442,6 +515,19 @@ def _print_outcome(m, summary, out: Path, quiet: bool):
     _say(quiet, "\nissues, with the first three files each (the manifest lists them all):")
     _print_issues(m, quiet)
     _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
+    for line in scan_notes(m.attrs.get("scan", {})):
+        click.echo(line, err=True)
+    split = m.attrs.get("split", {})
+    if "kept" in split:
+        lines = keep_lines(split, m)
+        if split.get("given"):
+            lines[0] = ("kept the split of the train/val/test folders (--resplit splits anew): "
+                        + lines[0])
+        _say(quiet, lines[0])
+        _warn(lines[1:])
+    empty = empty_parts(m, ratios=ratios, folds=folds)
+    _warn(_split_warnings(split, empty, folds) if split else empty)
+    return empty
 
 
 @main.command()

@@ -89,7 +89,8 @@ _PRECEDENCE = ("test", "val", "train")
 _PRECEDENCE_RANK = {name: i for i, name in enumerate(_PRECEDENCE)}
 
 
-def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, progress=None):
+def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, keep_given=False,
+          progress=None):
     """Assign every usable row to train, val or test, keeping each unit in one split.
 
     Parameters
@@ -111,6 +112,10 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
         ``path``) keeps its split (and its fold, when folds are asked and it had one); only the
         other rows are placed. A new row in a unit with a kept row follows it; a unit holding
         kept rows of several splits follows test, then val, then train.
+    keep_given : bool
+        Without ``keep_from``, keep every row in its ``given_split`` (the train/val/test folder
+        it was found in, matched by path) the way ``keep_from`` keeps rows, and place only rows
+        outside such folders (see :func:`given_assignment`).
     progress : callable, optional
         ``progress(iterable, total=int, label=str)`` wrapped around the one-by-one placement.
 
@@ -141,6 +146,8 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     folds = _check_folds(folds)
     if keep_from is not None:
         _check_manifest(keep_from, "keep_from", ("path", "split"))
+    elif keep_given:
+        keep_from = given_assignment(manifest)
 
     order = manifest["path"].astype(str).argsort(kind="stable").to_numpy()
     frame = manifest.iloc[order]
@@ -225,11 +232,14 @@ def split_summary(manifest, *, keep_from=None) -> dict:
         ``rows``; ``assigned`` and ``left_out`` (rows with an empty split); ``splits``
         (rows per split name); ``folds`` (rows per fold, ``{}`` without folds);
         ``thin_classes`` (labels carrying the ``thin-class`` warning); ``missing``
-        (``{split: [labels present elsewhere but absent here]}``, only splits that lack one).
+        (``{split: [labels present elsewhere but absent here]}``, only splits that lack one);
+        with folds ``units_per_class`` (``{label: units}``: the groups, clusters or single files
+        of each class that the folds share out) and ``fold_units`` (all of them).
         With ``keep_from`` also ``kept`` (rows found in the older split and still there),
         ``placed`` (rows not found there that got a split), ``moved`` (rows found there whose
-        split changed: a val row becomes train when folds are asked) and ``dropped`` (rows found
-        there that are now left out, e.g. because they carry an error code).
+        split changed: a val row becomes train when folds are asked), ``dropped`` (rows found
+        there that are now left out, e.g. because they carry an error code) and ``dropped_from``
+        (``{old split: [paths of its dropped rows]}``).
 
     Examples
     --------
@@ -266,16 +276,55 @@ def split_summary(manifest, *, keep_from=None) -> dict:
                "left_out": int((~assigned).sum()),
                "splits": {n: int((split_col == n).sum()) for n in names},
                "folds": folds, "thin_classes": thin, "missing": missing}
+    if folds:
+        summary["units_per_class"], summary["fold_units"] = _fold_units(manifest, labels)
     if keep_from is not None:
         _check_manifest(keep_from, "keep_from", ("path", "split"))
         old, _ = _old_assignment(manifest, keep_from)
         now = split_col.to_numpy(dtype=object)
         found = old != ""
+        dropped = found & (now == "")
+        paths = manifest["path"].astype(str).to_numpy(dtype=object)
         summary.update(kept=int((found & (now == old)).sum()),
                        placed=int((~found & (now != "")).sum()),
                        moved=int((found & (now != "") & (now != old)).sum()),
-                       dropped=int((found & (now == "")).sum()))
+                       dropped=int(dropped.sum()),
+                       dropped_from={n: sorted(paths[dropped & (old == n)]) for n in SPLIT_NAMES
+                                     if (dropped & (old == n)).any()})
     return summary
+
+
+def _fold_units(manifest, labels):
+    """Units (linked as :func:`split` links them) among the rows that have a fold: per class, and
+    in all."""
+    import pandas as pd
+
+    unit = _components(_link_keys(manifest), len(manifest))
+    has_fold = manifest["fold"].notna().to_numpy()
+    pairs = pd.DataFrame({"label": labels.to_numpy()[has_fold], "unit": unit[has_fold]})
+    per_class = {str(k): int(v) for k, v in pairs.groupby("label")["unit"].nunique().items()}
+    return per_class, int(pairs["unit"].nunique())
+
+
+def given_assignment(manifest):
+    """The split the folders gave (``given_split``) as a ``path,split`` frame for ``keep_from``,
+    or None when no row has one. Rows are matched by path only: a byte copy in another folder
+    is another file here.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": ["train/cat/a.png", "b.png"], "given_split": ["train", ""]})
+    >>> given_assignment(m).to_dict("list")
+    {'path': ['train/cat/a.png'], 'split': ['train']}
+    """
+    if "given_split" not in manifest.columns:
+        return None
+    given = manifest["given_split"].fillna("").astype(str)
+    if not given.isin(SPLIT_NAMES).any():
+        return None
+    rows = given.isin(SPLIT_NAMES)
+    return manifest.loc[rows, ["path"]].assign(split=given[rows]).reset_index(drop=True)
 
 
 # ---------------------------------------------------------------- parameters
