@@ -39,7 +39,7 @@ def empty_parts(manifest, *, ratios=None, folds=None) -> list[str]:
     issues = manifest["issues"].fillna("").astype(str) if "issues" in manifest.columns else split.map(lambda _: "")
     lines = []
     if not (split != "").any():
-        return [f"no file reached a split: all {len(manifest)} files are left out{_why(issues)}"]
+        return [f"no file reached a split: all {len(manifest)} files are left out{why_left_out(issues)}"]
     for name in _expected_splits(ratios, folds):
         if not (split == name).any():
             lines.append(f"split {name} is empty: it has a share in the ratios but no file "
@@ -48,7 +48,7 @@ def empty_parts(manifest, *, ratios=None, folds=None) -> list[str]:
         mine = labels == label
         if not (split[mine] != "").any():
             lines.append(f"class {label} has no file in any split: all {int(mine.sum())} of its "
-                         f"files are left out{_why(issues[mine])}")
+                         f"files are left out{why_left_out(issues[mine])}")
     return lines
 
 
@@ -63,10 +63,19 @@ def _expected_splits(ratios, folds) -> list[str]:
     return [name for name, share in zip(SPLIT_NAMES, values) if share > 0]
 
 
-def _why(issues) -> str:
-    """`` (too-small 28, ...)``: the error codes that kept the rows out, with their counts."""
+def why_left_out(issues) -> str:
+    """`` (too-small 28, ...)``: the error codes that kept the rows out, with their counts, and
+    the option that would keep them; ``""`` when no row has an error code.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> why_left_out(pd.Series(["too-small", "too-small;exact-copy", ""]))
+    ' (too-small 2); lower --min-side to keep small images'
+    """
     flagged = issues[issues != ""]
-    tally = codes.counts(flagged[codes.errors_mask(flagged)]) if len(flagged) else {}
+    tally = {code: n for code, n in codes.counts(flagged).items()
+             if code in codes.CODES and codes.CODES[code].severity == codes.ERROR}
     if not tally:
         return ""
     hints = {code: HINTS[code] for code in tally if code in HINTS}
@@ -119,8 +128,14 @@ def keep_lines(summary: dict, manifest) -> list[str]:
         if lost:
             rows = manifest["path"].astype(str).isin(lost)
             lines.append(f"warning: the old {name} split lost {len(lost)} files, now left out"
-                         f"{_why(issues[rows])}: {', '.join(lost[:3])}" + (" ..." if len(lost) > 3 else ""))
+                         f"{why_left_out(issues[rows])}: {', '.join(lost[:3])}" + (" ..." if len(lost) > 3 else ""))
     return lines
+
+
+def missing_lines(summary: dict) -> list[str]:
+    """A line per split lacking classes found in other splits (:func:`labelprep.split_summary`)."""
+    return [f"{name} has no file of class {', '.join(labels)} (too few groups or clusters to "
+            "reach every split)" for name, labels in summary["missing"].items()]
 
 
 def fold_warnings(summary: dict, folds) -> list[str]:

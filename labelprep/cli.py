@@ -349,7 +349,6 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
     path) keep their split and only new files are placed.
     """
-    from .advice import empty_parts, keep_lines
     from .splits import split as run, split_summary
 
     old = _read(keep_from) if keep_from is not None else None
@@ -361,20 +360,23 @@ def split(manifest_path, ratios, seed, folds, keep_from, quiet):
     sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
     _say(quiet, "  ".join(sizes + [f"left out: {summary['left_out']}"]))
-    if old is not None:
-        _say(quiet, keep_lines(summary, m)[0])
-        _warn(keep_lines(summary, m)[1:])
-    _warn(_split_warnings(summary, empty_parts(m, ratios=ratios, folds=folds), folds))
+    _print_split_notes(m, summary, quiet, ratios=ratios, folds=folds)
 
 
-def _split_warnings(summary: dict, empty: list, folds) -> list:
-    """Empty splits and classes, classes missing from a split, folds thinner than a class."""
-    from .advice import fold_warnings
+def _print_split_notes(m, summary: dict, quiet: bool, *, ratios, folds, given=False) -> list:
+    """What was kept of an earlier (or the given) split, then warnings for empty splits and
+    classes, classes missing from a split and thin folds; returns the empty-split warnings."""
+    from .advice import empty_parts, fold_warnings, keep_lines, missing_lines
 
-    lines = list(empty)
-    lines += [f"{name} has no file of class {', '.join(labels)} (too few groups or clusters to "
-              "reach every split)" for name, labels in summary["missing"].items()]
-    return lines + fold_warnings(summary, folds)
+    if "kept" in summary:
+        lines = keep_lines(summary, m)
+        if given:
+            lines[0] = "kept the split of the train/val/test folders (--resplit splits anew): " + lines[0]
+        _say(quiet, lines[0])
+        _warn(lines[1:])
+    empty = empty_parts(m, ratios=ratios, folds=folds)
+    _warn(empty + missing_lines(summary) + fold_warnings(summary, folds))
+    return empty
 
 
 @main.command()
@@ -507,7 +509,7 @@ def prepare(roots, out, fail_on, quiet, labels, **options):
 
 def _print_outcome(m, summary, out: Path, quiet: bool, *, ratios=None, folds=None) -> list:
     """The tables, issues and notes of a prepare run; returns the empty-split warnings."""
-    from .advice import empty_parts, keep_lines, scan_notes
+    from .advice import scan_notes
     from .reports import terminal_table
 
     # the issues are listed once, with their counts and first files, after the tables
@@ -517,17 +519,8 @@ def _print_outcome(m, summary, out: Path, quiet: bool, *, ratios=None, folds=Non
     _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
     for line in scan_notes(m.attrs.get("scan", {})):
         click.echo(line, err=True)
-    split = m.attrs.get("split", {})
-    if "kept" in split:
-        lines = keep_lines(split, m)
-        if split.get("given"):
-            lines[0] = ("kept the split of the train/val/test folders (--resplit splits anew): "
-                        + lines[0])
-        _say(quiet, lines[0])
-        _warn(lines[1:])
-    empty = empty_parts(m, ratios=ratios, folds=folds)
-    _warn(_split_warnings(split, empty, folds) if split else empty)
-    return empty
+    split = m.attrs["split"]
+    return _print_split_notes(m, split, quiet, ratios=ratios, folds=folds, given=split["given"])
 
 
 @main.command()

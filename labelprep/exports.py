@@ -165,16 +165,13 @@ def _manifest_and_root(manifest, root):
 
 def _nothing_in_a_split(manifest) -> str:
     """Why nothing can be exported: no row has a split, with the codes that kept them out."""
-    from . import codes
+    from .advice import why_left_out
 
-    if "issues" not in manifest.columns or not len(manifest):
+    issues = manifest["issues"].fillna("").astype(str) if "issues" in manifest.columns else None
+    why = why_left_out(issues) if issues is not None and len(issues) else ""
+    if not why:
         return "no file of the manifest is in a split; run split first"
-    left = manifest["issues"].fillna("").astype(str)
-    found = [f"{code} {n}" for code, n in codes.counts(left[codes.errors_mask(left)]).items()]
-    if not found:
-        return "no file of the manifest is in a split; run split first"
-    return (f"no file of the manifest is in a split: all {len(manifest)} are left out ("
-            + ", ".join(found[:4]) + "); see labelprep check, or change the limit that flags them")
+    return f"no file of the manifest is in a split: all {len(manifest)} are left out{why}"
 
 
 def plan_targets(manifest):

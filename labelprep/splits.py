@@ -239,7 +239,7 @@ def split_summary(manifest, *, keep_from=None) -> dict:
         ``placed`` (rows not found there that got a split), ``moved`` (rows found there whose
         split changed: a val row becomes train when folds are asked), ``dropped`` (rows found
         there that are now left out, e.g. because they carry an error code) and ``dropped_from``
-        (``{old split: [paths of its dropped rows]}``).
+        (``{old split: [paths that were in it and are now left out]}``, matched by path).
 
     Examples
     --------
@@ -284,13 +284,17 @@ def split_summary(manifest, *, keep_from=None) -> dict:
         now = split_col.to_numpy(dtype=object)
         found = old != ""
         dropped = found & (now == "")
-        paths = manifest["path"].astype(str).to_numpy(dtype=object)
+        # who lost a member: the old split of the same path (a new byte copy of an old test
+        # file matches it by sha256 above, but was never in test)
+        paths = manifest["path"].astype(str)
+        was = paths.map(keep_from.assign(path=keep_from["path"].astype(str))
+                        .drop_duplicates("path").set_index("path")["split"]).fillna("").to_numpy(dtype=object)
         summary.update(kept=int((found & (now == old)).sum()),
                        placed=int((~found & (now != "")).sum()),
                        moved=int((found & (now != "") & (now != old)).sum()),
                        dropped=int(dropped.sum()),
-                       dropped_from={n: sorted(paths[dropped & (old == n)]) for n in SPLIT_NAMES
-                                     if (dropped & (old == n)).any()})
+                       dropped_from={n: sorted(paths[(now == "") & (was == n)]) for n in SPLIT_NAMES
+                                     if ((now == "") & (was == n)).any()})
     return summary
 
 
