@@ -2,8 +2,8 @@
 
 A split leaks when the same picture, or nearly the same, sits in two splits (a model is then
 tested on what it trained on), or when one user group (subject, session, source) is spread over
-two splits. :func:`audit` finds every near-duplicate pair (perceptual hashes within
-``max_distance`` bits), every byte-identical pair (same ``sha256``, also for files without a hash)
+two splits. :func:`audit` finds every near-duplicate pair (linked as :func:`labelprep.group`
+links them, :func:`labelprep.clusters.near_links`), every byte-identical pair (same ``sha256``, also for files without a hash)
 and every group that crosses splits, and adds the class balance per split from
 :func:`labelprep.balance.by_split`. :func:`render` turns the result into terminal text.
 """
@@ -29,8 +29,9 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
         Needs ``path``, ``label`` and the split column; reads ``phash``, ``sha256`` and
         ``group`` when present. Rows whose split is ``""`` take no part in the leaks.
     max_distance : int
-        Largest Hamming distance (bits of the 64-bit ``phash``) at which two files count as
-        near-duplicates, 0 to 64.
+        Largest Hamming distance (bits of a 64-bit perceptual hash) at which two files count as
+        near-duplicates, 0 to 64, as in :func:`labelprep.group` (whose verification the pairs
+        go through: centre check, low-detail rule).
     split_column : str, optional
         The column holding each row's split. By default ``split`` when any row has one, else
         ``given_split`` (the train/val/test folder the scanner found).
@@ -43,9 +44,10 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
         - ``split_column``, ``max_distance``; ``rows``: rows in a split; ``groups_known``:
           whether any row has a user group (without one, group leaks cannot be checked).
         - ``near_leaks``: one dict per pair of files in different splits that are byte-identical
-          or within ``max_distance``: ``path_a``, ``path_b`` (``path_a`` sorts first),
-          ``label_a``, ``label_b``, ``split_a``, ``split_b``, ``distance`` (bits; 0 for
-          byte-identical files) and ``exact`` (same ``sha256``); sorted by the two paths.
+          or near-duplicates: ``path_a``, ``path_b`` (``path_a`` sorts first), ``label_a``,
+          ``label_b``, ``split_a``, ``split_b``, ``distance`` (bits between the whole-image
+          pHashes; 0 for byte-identical files) and ``exact`` (same ``sha256``); sorted by the
+          two paths.
         - ``group_leaks``: one dict per user group found in more than one split: ``group``,
           ``splits`` (``{split: rows}``) and ``paths`` (``{split: [paths]}``); sorted by group.
         - ``leaking_files``: how many files are in at least one leaking pair or group.
@@ -191,16 +193,14 @@ def _leaking_pairs(frame, max_distance):
     import numpy as np
     import pandas as pd
 
-    from .neighbors import hex_to_uint64, radius_pairs
+    from .clusters import near_links
 
     parts = []
     if "phash" in frame.columns:
-        phash = frame["phash"].fillna("").astype(str).str.lower()
-        valid = phash.map(lambda h: len(h) == 16 and set(h) <= _HEX_DIGITS).to_numpy(dtype=bool)
-        rows = np.flatnonzero(valid)
-        hashes = hex_to_uint64(phash[valid])
-        i, j, dist = radius_pairs(hashes, max_distance)
-        parts.append(pd.DataFrame({"a": rows[i], "b": rows[j], "distance": dist}))
+        # the links group clusters by (one definition of a near-duplicate), so an audit of a
+        # split made from those clusters finds no near pair across splits
+        a, b = near_links(frame, max_distance=max_distance)
+        parts.append(pd.DataFrame({"a": a, "b": b, "distance": _whole_distance(frame, a, b)}))
     if "sha256" in frame.columns:
         sha = pd.DataFrame({"sha": frame["sha256"].fillna("").astype(str), "row": np.arange(len(frame))})
         sha = sha[sha["sha"] != ""]
@@ -223,6 +223,21 @@ def _leaking_pairs(frame, max_distance):
         exact = np.zeros(len(pairs), dtype=bool)
     # byte-identical files have identical hashes: distance 0 even where no hash was computed
     return pairs.assign(exact=exact, distance=np.where(exact, 0, pairs["distance"])).reset_index(drop=True)
+
+
+def _whole_distance(frame, a, b):
+    """Bits between the whole-image pHashes of rows ``a`` and ``b``; 64 where one has none
+    (the link then came from a centred-box hash, see :mod:`labelprep.clusters`)."""
+    import numpy as np
+
+    from .neighbors import hex_to_uint64
+
+    phash = frame["phash"].fillna("").astype(str).str.lower()
+    valid = phash.map(lambda h: len(h) == 16 and set(h) <= _HEX_DIGITS).to_numpy(dtype=bool)
+    hashes = np.zeros(len(frame), dtype=np.uint64)
+    hashes[valid] = hex_to_uint64(phash[valid])
+    dist = np.bitwise_count(hashes[a] ^ hashes[b]).astype(np.int64)
+    return np.where(valid[a] & valid[b], dist, 64)
 
 
 def _leaking_groups(frame) -> list[dict]:

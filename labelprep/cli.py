@@ -2,17 +2,21 @@
 
 Nothing heavy is imported at module level, so ``labelprep --help`` answers at once. Library errors
 (:class:`labelprep.errors.LabelprepError`) become one line on stderr and their exit code: 2 for bad
-usage or unreadable input, 1 for a failed ``--fail-on`` gate.
+usage or unreadable input, 1 for a failed ``--fail-on`` gate. Any other exception is a labelprep
+bug: one line asking for a bug report and exit status 70 (``BUG_STATUS``, sysexits.h
+EX_SOFTWARE); set ``LABELPREP_DEBUG=1`` to get the traceback instead. Each stage's options come
+from :data:`labelprep.options.SPEC`.
 """
 
 from __future__ import annotations
 
 import functools
+import os
 from pathlib import Path
 
 import click
 
-from . import __version__, defaults
+from . import __version__, defaults, options
 from .errors import LabelprepError
 
 
@@ -28,6 +32,19 @@ class _Stopped(BaseException):
     def __init__(self, signum: int):
         super().__init__(signum)
         self.signum = signum
+
+
+# sysexits.h EX_SOFTWARE, "an internal software error has been detected": neither a failed gate
+# (1) nor bad usage or input (2)
+BUG_STATUS = 70
+DEBUG_VARIABLE = "LABELPREP_DEBUG"
+
+
+def _bug_line(exc: Exception) -> str:
+    """One line for an exception labelprep did not expect: what it was, and where to send it."""
+    what = " ".join(str(exc).split())[:200]
+    return (f"internal error, please report it as a labelprep bug with the command you ran "
+            f"({type(exc).__name__}: {what}); {DEBUG_VARIABLE}=1 shows the traceback")
 
 
 def _stop(signum, frame):
@@ -57,6 +74,12 @@ class _Group(click.Group):
             signum = getattr(exc, "signum", signal.SIGINT)
             click.echo(_RESUME.format(what="Ctrl-C" if signum == signal.SIGINT else "SIGTERM"), err=True)
             raise SystemExit(128 + signum) from None
+        except (click.ClickException, click.exceptions.Exit, click.Abort):
+            raise
+        except Exception as exc:
+            if os.environ.get(DEBUG_VARIABLE):
+                raise
+            raise _Failure(_bug_line(exc), BUG_STATUS) from exc
         finally:
             if main_thread:
                 signal.signal(signal.SIGTERM, previous)
@@ -85,24 +108,6 @@ def _flag_words(message: str, ctx) -> str:
     return re.sub(r"(^|; )([a-z][a-z_]*)(?= )", leading, message)
 
 
-def _stack(*decorators):
-    """One decorator applying several click options, so prepare can reuse each stage's options."""
-    def apply(func):
-        for deco in reversed(decorators):
-            func = deco(func)
-        return func
-    return apply
-
-
-def _parse_ratios(ctx, param, value):
-    if value is None or isinstance(value, tuple):
-        return value
-    try:
-        return tuple(float(x) for x in value.split(","))
-    except ValueError:
-        raise click.BadParameter(f"expected numbers separated by commas such as 0.8,0.1,0.1; got {value!r}")
-
-
 _existing_dir = click.Path(exists=True, file_okay=False, dir_okay=True, path_type=Path)
 # a root is a folder or an archive (.zip, .tar, .tar.gz, .tgz); sources.name_roots judges which
 _existing_root = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
@@ -113,71 +118,12 @@ _existing_manifest = click.Path(exists=True, file_okay=True, dir_okay=True, path
 _quiet = click.option("--quiet", "-q", is_flag=True, help="No progress bar and no summary.")
 _force = click.option("--force", is_flag=True,
                       help="Replace outputs that labelprep did not write (never touches sources).")
-_jobs = click.option("--jobs", "-j", type=click.IntRange(min=0), default=0, show_default=True,
-                     help="Worker processes for decoding; 0 = every core.")
-_cluster_group = click.option("--cluster", metavar="ADDRESS", default=None,
-                              help="Run the near-pair search on the Dask cluster whose scheduler is "
-                                   "at ADDRESS (e.g. tcp://scheduler-host:8786); the same clusters "
-                                   "as a local run. Needs labelprep[cluster].")
-_cluster = click.option("--cluster", metavar="ADDRESS", default=None,
-                        help="Run the work on the Dask cluster whose scheduler is at ADDRESS "
-                             "(e.g. tcp://scheduler-host:8786) instead of local processes: the "
-                             "decoding (every worker must see ROOT at the same path) and the "
-                             "near-pair search. Needs labelprep[cluster].")
-_max_pixels = click.option("--max-pixels", type=click.IntRange(min=1), default=defaults.MAX_PIXELS,
-                           show_default=True,
-                           help="Pixel budget per image; larger images are flagged and not decoded. "
-                                "Pillow itself refuses images over twice its default, whatever the budget.")
-SCAN_OPTIONS = _stack(
-    click.option("--layout", type=click.Choice(["auto", "folders", "split-folders", "table"]),
-                 default="auto", show_default=True,
-                 help="Where labels come from: ROOT/<label>/..., ROOT/<train|val|test>/<label>/..., "
-                      "or a label table; auto detects."),
-    click.option("--labels", multiple=True, metavar="[SOURCE=]TABLE",
-                 help="Label table (CSV in any common dialect, or Parquet) with columns "
-                      "path,label[,group], paths relative to ROOT. With several roots, repeat as "
-                      "SOURCE=TABLE, SOURCE a root's folder name as in the source column."),
-    click.option("--group-pattern", metavar="REGEX", default=None,
-                 help="Regular expression; its first capture group in each path is the file's "
-                      "group (e.g. '([^/]+)_\\d+\\.jpg$' groups by name prefix)."),
-    click.option("--group-by-source", is_flag=True,
-                 help="With several roots, each root is one group: no source spans two splits."),
-    click.option("--include-hidden", is_flag=True,
-                 help="Also index hidden names (starting with '.') and system files such as Thumbs.db."),
-    _jobs, _max_pixels,
-)
-CHECK_OPTIONS = _stack(
-    click.option("--min-side", type=click.IntRange(min=1), default=defaults.MIN_SIDE, show_default=True,
-                 help="Images whose shorter side is below this many pixels are flagged too-small."),
-    click.option("--max-aspect", type=click.FloatRange(min=1), default=defaults.MAX_ASPECT,
-                 show_default=True, metavar="RATIO",
-                 help="Long side over short side above this is flagged extreme-aspect."),
-    click.option("--min-spread", type=click.FloatRange(0, 255), default=defaults.MIN_SPREAD,
-                 show_default=True, metavar="LEVELS",
-                 help="Luminance standard deviation (0-255) below this is flagged near-blank."),
-)
-_max_distance = click.option(
-    "--max-distance", type=click.IntRange(0, 64), default=defaults.MAX_DISTANCE, show_default=True,
-    metavar="BITS", help="Hamming radius on the 64-bit perceptual hash for near-duplicates.")
-GROUP_OPTIONS = _stack(
-    _max_distance,
-    click.option("--keep-conflicts", is_flag=True,
-                 help="Keep clusters that span labels in the split (default: leave them out)."),
-    click.option("--flips", is_flag=True,
-                 help="Also match left-right mirrored copies (off by default: some labels, such as "
-                      "left/right signs, change when mirrored)."),
-)
-SPLIT_OPTIONS = _stack(
-    click.option("--ratios", callback=_parse_ratios, default=",".join(map(str, defaults.RATIOS)),
-                 metavar="TRAIN,VAL,TEST",
-                 show_default=True, help="train,val,test shares (two numbers: train,test)."),
-    click.option("--seed", type=int, default=defaults.SEED, show_default=True,
-                 help="Random seed; the same seed and files give the same split."),
-    click.option("--folds", type=click.IntRange(min=2), default=None,
-                 help="Also write a fold column with K cross-validation folds."),
-    click.option("--keep-from", type=_existing_file, default=None, metavar="OLD_MANIFEST",
-                 help="Keep every file already assigned in this manifest where it was; place only new files."),
-)
+_jobs = options.BY_NAME["jobs"].decorator()
+# each stage's options come from labelprep.options.SPEC; prepare takes those of every stage
+SCAN_OPTIONS = options.click_options("scan")
+CHECK_OPTIONS = options.click_options("check")
+GROUP_OPTIONS = options.click_options("group")
+SPLIT_OPTIONS = options.click_options("split")
 _fail_on = click.option("--fail-on", type=click.Choice(["empty", "error", "warning", "never"]), default="never",
                         show_default=True,
                         help="Exit with status 1: empty when a split or a class ends up with no file; "
@@ -201,10 +147,22 @@ def _read(path):
     return read(path)
 
 
-def _write_back(df, path, stage: str, options: dict):
+def _read_to_update(path, force: bool):
+    """MANIFEST for a stage that writes it back, guarded before the work so a refusal costs none
+    (after the read, so a table that is no manifest at all gets that reason)."""
+    from .manifest import guard_output
+
+    m = _read(path)
+    guard_output(path, force=force)
+    return m
+
+
+def _write_back(df, path, stage: str, recorded: dict, force: bool):
     from .manifest import write
 
-    write(df, path, meta={"stages": {stage: {"options": options}}}, force=True)
+    # MANIFEST is rewritten in place: through the guard, so a table labelprep did not write
+    # (no sidecar) gains the stage's columns only with --force
+    write(df, path, meta=options.sidecar(stage, recorded), force=force)
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
@@ -224,13 +182,11 @@ def main():
               metavar="MANIFEST", help="Manifest to write (.csv, or .parquet with pyarrow). "
                                        "If it exists, unchanged files are not decoded again.")
 @SCAN_OPTIONS
-@_cluster
 @click.option("--partitions", type=click.IntRange(min=1), default=None, metavar="N",
               help="Write MANIFEST (a .parquet name) as a folder of N Parquet part files.")
 @_force
 @_quiet
-def scan(roots, output, layout, labels, group_pattern, group_by_source, include_hidden, jobs,
-         max_pixels, cluster, partitions, force, quiet):
+def scan(roots, output, partitions, force, quiet, **chosen):
     """Index every file under each ROOT: label, size, format, digests and perceptual hash.
 
     A ROOT is a folder or a .zip, .tar, .tar.gz or .tgz archive; archives below a ROOT are read
@@ -248,28 +204,18 @@ def scan(roots, output, layout, labels, group_pattern, group_by_source, include_
         manifest.check_partitions(partitions, output)
     journal = journal_path(output)
     root = roots[0] if len(roots) == 1 else list(roots)
-    m = run(root, layout=layout, labels=_labels(labels), group_pattern=group_pattern,
-            group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs,
-            max_pixels=max_pixels, previous=previous_manifest(output, root=root, max_pixels=max_pixels),
-            journal=journal, progress=_progress(quiet), cluster=cluster, exclude=own_files(output))
+    previous = previous_manifest(output, root=root, max_pixels=chosen["max_pixels"])
+    m = run(root, previous=previous, journal=journal, progress=_progress(quiet), exclude=own_files(output),
+            **chosen)
     facts = m.attrs.get("scan", {})
-    options = {"layout": layout, "labels": _labels(labels), "group_pattern": group_pattern,
-               "include_hidden": include_hidden, "max_pixels": max_pixels}
-    if group_by_source:
-        options["group_by_source"] = True
     manifest.write(m, output, meta={**describe(name_roots(root)),
-                                    "stages": {"scan": {"options": options, "result": facts}}},
+                                    **options.sidecar("scan", options.record(chosen, "scan"), result=facts)},
                    force=True, partitions=partitions)
     journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
     _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
                 f"{facts.get('reused', 0)} unchanged), layout {_layouts(facts.get('layout'))} -> {output}")
     for line in scan_notes(facts):
         click.echo(line, err=True)
-
-
-def _labels(values: tuple):
-    """``--labels`` as the library takes it: None, one table, or the SOURCE=TABLE items."""
-    return None if not values else values[0] if len(values) == 1 and "=" not in values[0] else list(values)
 
 
 def _layouts(chosen) -> str:
@@ -304,10 +250,10 @@ def _warn(lines):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @CHECK_OPTIONS
-@_max_pixels
 @_fail_on
+@_force
 @_quiet
-def check(manifest_path, fail_on, quiet, **limits):
+def check(manifest_path, fail_on, force, quiet, **limits):
     """Flag broken, truncated, tiny, misnamed and risky files in MANIFEST.
 
     The codes are written back into the manifest's issues column; no row is removed. Per code
@@ -315,8 +261,9 @@ def check(manifest_path, fail_on, quiet, **limits):
     """
     from .checks import check as run
 
-    m = run(_read(manifest_path), **limits)
-    _write_back(m, manifest_path, "check", {**m.attrs["check"], "fail_on": fail_on})
+    m = run(_read_to_update(manifest_path, force), **limits)
+    _write_back(m, manifest_path, "check", {**options.record(limits, "check"), "fail_on": fail_on},
+                force)
     _print_issues(m, quiet)
     _gate(m, fail_on)
 
@@ -324,16 +271,14 @@ def check(manifest_path, fail_on, quiet, **limits):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @GROUP_OPTIONS
-@_cluster_group
+@_force
 @_quiet
-def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
+def group(manifest_path, force, quiet, **chosen):
     """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""
     from .clusters import group as run
 
-    m = run(_read(manifest_path), max_distance=max_distance, keep_conflicts=keep_conflicts,
-            flips=flips, progress=_progress(quiet), cluster=cluster)
-    _write_back(m, manifest_path, "group", {"max_distance": max_distance,
-                                            "keep_conflicts": keep_conflicts, "flips": flips})
+    m = run(_read_to_update(manifest_path, force), progress=_progress(quiet), **chosen)
+    _write_back(m, manifest_path, "group", options.record(chosen, "group"), force)
     in_clusters = int(m["dup_group"].notna().sum())
     _say(quiet, f"{m['dup_group'].nunique()} near-duplicate clusters holding {in_clusters} files")
 
@@ -341,26 +286,28 @@ def group(manifest_path, max_distance, keep_conflicts, flips, cluster, quiet):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
+@_force
 @_quiet
-def split(manifest_path, ratios, seed, folds, keep_from, quiet):
+def split(manifest_path, force, quiet, **chosen):
     """Assign train/val/test so that no cluster or group spans two splits.
 
     Two ratios mean train,test. With --folds K the split holds train and test and every train
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
-    path) keep their split and only new files are placed.
+    path) keep their split and only new files are placed. A manifest of a train/val/test folder
+    tree keeps the split of its folders unless --resplit.
     """
-    from .splits import split as run, split_summary
+    from .splits import given_assignment, split as run, split_summary
 
-    old = _read(keep_from) if keep_from is not None else None
-    m = run(_read(manifest_path), ratios=ratios, seed=seed, folds=folds, keep_from=old,
-            progress=_progress(quiet))
-    _write_back(m, manifest_path, "split", {"ratios": list(ratios), "seed": seed, "folds": folds,
-                                            "keep_from": keep_from})
-    summary = split_summary(m, keep_from=old)
+    old = _read(chosen["keep_from"]) if chosen["keep_from"] is not None else None
+    m = run(_read_to_update(manifest_path, force), progress=_progress(quiet), **{**chosen, "keep_from": old})
+    _write_back(m, manifest_path, "split", options.record(chosen, "split"), force)
+    given = given_assignment(m) if old is None and not chosen["resplit"] else None
+    summary = split_summary(m, keep_from=old if given is None else given)
     sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
     _say(quiet, "  ".join(sizes + [f"left out: {summary['left_out']}"]))
-    _print_split_notes(m, summary, quiet, ratios=ratios, folds=folds)
+    _print_split_notes(m, summary, quiet, ratios=chosen["ratios"], folds=chosen["folds"],
+                       given=given is not None)
 
 
 def _print_split_notes(m, summary: dict, quiet: bool, *, ratios, folds, given=False) -> list:
@@ -412,11 +359,11 @@ def _root_from(meta: dict):
 @click.option("--fail-on", type=click.Choice(["leaks", "never"]), default="never", show_default=True,
               help="Exit with status 1 when any near-duplicate or group crosses splits.")
 @click.option("--json", "json_path", type=click.Path(path_type=Path), help="Write the audit as JSON.")
-@_max_distance
+@options.BY_NAME["max_distance"].decorator()
 @SCAN_OPTIONS
+@_force
 @_quiet
-def audit(target, fail_on, json_path, max_distance, layout, labels, group_pattern, group_by_source,
-          include_hidden, jobs, max_pixels, quiet):
+def audit(target, fail_on, json_path, max_distance, force, quiet, **scan_options):
     """Leaks and class balance of an existing split.
 
     MANIFEST_OR_ROOT is a manifest with a split column, or a folder laid out as
@@ -428,9 +375,7 @@ def audit(target, fail_on, json_path, max_distance, layout, labels, group_patter
     if target.is_dir():
         from .scanner import scan as scan_run
 
-        m = scan_run(target, layout=layout, labels=_labels(labels), group_pattern=group_pattern,
-                     group_by_source=group_by_source, include_hidden=include_hidden, jobs=jobs, max_pixels=max_pixels,
-                     progress=_progress(quiet))
+        m = scan_run(target, progress=_progress(quiet), **scan_options)
     else:
         m = _read(target)
     result = run(m, max_distance=max_distance)
@@ -439,7 +384,7 @@ def audit(target, fail_on, json_path, max_distance, layout, labels, group_patter
 
         from .manifest import write_text
 
-        write_text(json_path, json.dumps(result, indent=2, sort_keys=True) + "\n")
+        write_text(json_path, json.dumps(result, indent=2, sort_keys=True) + "\n", force=force)
     _say(quiet, render(result))
     if fail_on == "leaks" and (result["near_leaks"] or result["group_leaks"]):
         raise GateFailed(f"{len(result['near_leaks'])} near-duplicate pairs and "
@@ -481,18 +426,11 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @click.argument("roots", metavar="ROOT...", nargs=-1, required=True, type=_existing_root)
 @click.option("--out", "out", required=True, type=click.Path(file_okay=False, path_type=Path),
               metavar="DIR", help="Folder for manifest.csv, report.json and report.html.")
-@SCAN_OPTIONS
-@CHECK_OPTIONS
-@GROUP_OPTIONS
-@SPLIT_OPTIONS
-@click.option("--resplit", is_flag=True,
-              help="On a ROOT/<train|val|test>/<label>/ tree, split anew; by default every file "
-                   "stays in its folder's split and only files outside those folders are placed.")
-@_cluster
+@options.click_options(*options.STAGES)
 @_fail_on
 @_force
 @_quiet
-def prepare(roots, out, fail_on, quiet, labels, **options):
+def prepare(roots, out, fail_on, quiet, **chosen):
     """Scan, check, group, split and report each ROOT in one go, into DIR.
 
     A ROOT is a folder or an archive; with several, each is a source (see scan). Nothing in DIR
@@ -502,8 +440,8 @@ def prepare(roots, out, fail_on, quiet, labels, **options):
     from .pipeline import prepare as run
 
     root = roots[0] if len(roots) == 1 else list(roots)
-    m, summary = run(root, out, labels=_labels(labels), progress=_progress(quiet), **options)
-    empty = _print_outcome(m, summary, out, quiet, ratios=options["ratios"], folds=options["folds"])
+    m, summary = run(root, out, progress=_progress(quiet), **chosen)
+    empty = _print_outcome(m, summary, out, quiet, ratios=chosen["ratios"], folds=chosen["folds"])
     _gate(m, fail_on, empty)
 
 

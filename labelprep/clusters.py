@@ -105,7 +105,7 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     n = len(rows)
     sha = _text(rows, "sha256")
     exact = _same_value_links(sha)
-    near = _near_links(rows, int(max_distance), flips, progress, cluster)
+    near = near_links(rows, max_distance=int(max_distance), flips=flips, progress=progress, cluster=cluster)
     cluster = _components(n, np.concatenate([exact, near], axis=1))
     size = np.bincount(cluster, minlength=n)[cluster]
     in_cluster = size > 1
@@ -138,6 +138,28 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     restored = out.iloc[np.argsort(order, kind="stable")]
     restored.index = manifest.index
     return coerce(restored)
+
+
+def near_links(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, flips=False, progress=None, cluster=None):
+    """The near-duplicate links :func:`group` clusters by: the one definition of a near-duplicate.
+
+    :func:`labelprep.audits.audit` calls it too, so an audit of a split made from these clusters
+    finds no near-duplicate pair across splits. Byte-identical files are not part of it (they
+    are linked by ``sha256``). The caller validates the arguments, as :func:`group` does.
+
+    Returns
+    -------
+    numpy.ndarray
+        Shape (2, k): row positions ``a < b`` of every verified pair, each pair once.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"phash": ["ff00ff00ff00ff00", "ff00ff00ff00ff01", "0123456789abcdef"]})
+    >>> near_links(m, max_distance=4).tolist()
+    [[0], [1]]
+    """
+    return _near_links(manifest.reset_index(drop=True), max_distance, flips, progress, cluster)
 
 
 def _text(rows, column):

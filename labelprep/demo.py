@@ -14,6 +14,7 @@ import shutil
 from pathlib import Path
 
 from .errors import OutputExistsError
+from .manifest import guard_output, write_text
 
 CLASSES = {"starfish": 96, "anemone": 64, "urchin": 36, "crab": 20}
 POOLS = 24
@@ -28,7 +29,8 @@ def make_demo(folder, *, seed: int = 0, force: bool = False) -> Path:
     Parameters
     ----------
     folder : path-like
-        Created if missing. An existing demo there is regenerated; anything else needs ``force``.
+        Created if missing. An existing demo there is regenerated; anything else needs ``force``
+        (``planted.csv`` goes through :func:`labelprep.manifest.guard_output`).
     seed : int
         The same seed draws the same images, byte for byte.
 
@@ -45,6 +47,7 @@ def make_demo(folder, *, seed: int = 0, force: bool = False) -> Path:
 
     folder = Path(folder)
     photos = folder / "photos"
+    guard_output(folder / PLANTED_NAME, force=force)  # before anything is removed
     if photos.exists():
         if not (folder / PLANTED_NAME).is_file() and not force:
             raise OutputExistsError(f"{photos} exists and is not a labelprep demo; pass --force to replace it")
@@ -60,10 +63,11 @@ def make_demo(folder, *, seed: int = 0, force: bool = False) -> Path:
             _draw(label, rng).save(path, "JPEG", quality=int(rng.integers(80, 95)))
             originals.setdefault(label, []).append(path)
     planted = _plant(photos, originals, rng)
-    with open(folder / PLANTED_NAME, "w", newline="", encoding="utf-8") as fh:
-        writer = csv.writer(fh, lineterminator="\n")
-        writer.writerow(["path", "problem", "expected_code"])
-        writer.writerows(planted)
+    listing = io.StringIO()
+    writer = csv.writer(listing, lineterminator="\n")
+    writer.writerow(["path", "problem", "expected_code"])
+    writer.writerows(planted)
+    write_text(folder / PLANTED_NAME, listing.getvalue(), force=force)
     return photos
 
 

@@ -137,8 +137,8 @@ def export(manifest, dest, *, root=None, mode="hardlink", force=False, strip_met
     import pandas as pd
 
     table = pd.DataFrame(written, columns=list(RESULT_COLUMNS))
-    _write_lists(table, dest)
-    _write_class_list(plan, dest)
+    _write_lists(table, dest, force=force)
+    _write_class_list(plan, dest, force=force)
     if failed:
         path, why = failed[0]
         raise InputError(f"{len(failed)} of {len(plan)} files were not exported; first: {path}: {why}")
@@ -427,7 +427,7 @@ def _publish(target: Path, source: Path, write) -> str:
     return digest
 
 
-def _write_lists(table, dest: Path) -> None:
+def _write_lists(table, dest: Path, *, force: bool) -> None:
     """``dest/<split folder>.csv`` per split: ``path`` (relative to dest), ``label``, ``source``
     (the manifest's path, which links the exported file back to the one scanned)."""
     from .manifest import write_text
@@ -435,16 +435,17 @@ def _write_lists(table, dest: Path) -> None:
     for _, rows in table.groupby("split", sort=False):
         folder = rows["target"].iloc[0].split("/", 1)[0]
         listed = rows[["target", "label", "path"]].rename(columns={"target": "path", "path": "source"})
-        write_text(dest / f"{folder}.csv", listed.to_csv(index=False, lineterminator="\n"))
+        write_text(dest / f"{folder}.csv", listed.to_csv(index=False, lineterminator="\n"),
+                   force=force, ledger=False)
 
 
-def _write_class_list(plan, dest: Path) -> None:
+def _write_class_list(plan, dest: Path, *, force: bool) -> None:
     """``dest/classes.txt``: every class folder of the export, sorted as a folder-per-class loader
     sorts the folders it finds (torchvision's ``find_classes``: ``sorted`` of the names)."""
     from .manifest import write_text
 
     folders = sorted({target.split("/")[1] for target in plan["target"]})
-    write_text(dest / CLASS_LIST, "".join(f"{name}\n" for name in folders))
+    write_text(dest / CLASS_LIST, "".join(f"{name}\n" for name in folders), force=force, ledger=False)
 
 
 # ---------------------------------------------------------------- location data

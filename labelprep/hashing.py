@@ -18,6 +18,10 @@ worker, more than the transforms of a few hundred files.
     the share of the thumbnail's AC energy above the 8x8 frequencies the hash keeps. A smooth
     image (icon, blank, small picture upscaled) has little, its hash bits are strongly
     correlated, and distinct images of that kind fall within a few bits of each other.
+``sketch``
+    the 32x32 grayscale thumbnail the whole-image hash is taken from, its 1,024 bytes (row-major,
+    0-255) in standard base64 (1,368 characters): a signature rich enough to compare two images
+    on their pixels, and to learn from, with no second decode of either file.
 ``spread``
     the standard deviation of the thumbnail's luminance (0-255): near 0 for a blank image. It
     comes from the same DCT, since an orthonormal DCT keeps energy (Parseval): the AC energy is
@@ -25,6 +29,8 @@ worker, more than the transforms of a few hundred files.
 """
 
 from __future__ import annotations
+
+import base64
 
 import numpy as np
 
@@ -66,14 +72,15 @@ def fingerprint(img):
     -------
     dict of str to str or float
         ``phash``, ``phash_c80``, ``phash_c70`` and ``phash_mirror`` as 16 lowercase hex
-        digits, ``detail`` as a float in [0, 1] and ``spread`` as a float in [0, 127.5].
+        digits, ``detail`` as a float in [0, 1], ``spread`` as a float in [0, 127.5] and
+        ``sketch`` as base64 text (decode it with :func:`sketch_pixels`).
 
     Examples
     --------
     >>> from PIL import Image
     >>> fp = fingerprint(Image.linear_gradient("L"))
     >>> sorted(fp)
-    ['detail', 'phash', 'phash_c70', 'phash_c80', 'phash_mirror', 'spread']
+    ['detail', 'phash', 'phash_c70', 'phash_c80', 'phash_mirror', 'sketch', 'spread']
     >>> fp["phash"] == fp["phash_mirror"]  # a top-to-bottom gradient is its own mirror image
     True
     """
@@ -83,7 +90,8 @@ def fingerprint(img):
         raise TypeError(f"fingerprint expects a PIL.Image.Image, got {type(img).__name__}")
     # the same conversion imagehash.phash makes, so that "phash" equals its value bit for bit
     gray = img.convert("L")
-    full = _dct(gray, None)
+    thumb = np.asarray(gray.resize((_THUMB, _THUMB), Image.Resampling.LANCZOS), dtype=np.uint8)
+    full = _transform(thumb.astype(np.float64), _THUMB)
     low = [full[:_BITS, :_BITS], full[:_BITS, :_BITS] * _MIRROR_SIGNS]
     # the box hashes need no bit-exact reference, so they start from a box-filtered reduction
     # whose shorter side is still >= 2x the thumbnail: a Lanczos pass costs in proportion to the
@@ -99,6 +107,32 @@ def fingerprint(img):
     kept = float(energy[:_BITS, :_BITS].sum())
     out["detail"] = round((total - kept) / total, 4) if total > 0 else 0.0
     out["spread"] = round(float(np.sqrt(total / _THUMB ** 2)), 4)
+    out["sketch"] = base64.b64encode(thumb.tobytes()).decode("ascii")
+    return out
+
+
+def sketch_pixels(cells):
+    """The thumbnails of ``sketch`` cells as an ``(n, 32, 32)`` uint8 array.
+
+    Parameters
+    ----------
+    cells : sequence of str
+        ``sketch`` values as :func:`fingerprint` writes them; an empty cell (an undecodable file)
+        gives a thumbnail of zeros.
+
+    Examples
+    --------
+    >>> from PIL import Image
+    >>> sketch_pixels([fingerprint(Image.new("L", (64, 64), 200))["sketch"], ""])[:, 0, 0].tolist()
+    [200, 0]
+    """
+    out = np.zeros((len(cells), _THUMB, _THUMB), dtype=np.uint8)
+    for i, cell in enumerate(cells):
+        if cell:
+            raw = base64.b64decode(cell, validate=True)
+            if len(raw) != _THUMB * _THUMB:
+                raise ValueError(f"a sketch holds {_THUMB * _THUMB} bytes; got {len(raw)}")
+            out[i] = np.frombuffer(raw, dtype=np.uint8).reshape(_THUMB, _THUMB)
     return out
 
 
@@ -108,8 +142,13 @@ def _dct(gray, box, keep=_THUMB):
     from PIL import Image
 
     thumb = gray.resize((_THUMB, _THUMB), Image.Resampling.LANCZOS, box=box)
+    return _transform(np.asarray(thumb, dtype=np.float64), keep)
+
+
+def _transform(pixels, keep):
+    """The ``keep`` x ``keep`` lowest DCT-II frequencies of a 32x32 thumbnail."""
     basis = _DCT[:keep]
-    coefficients = basis @ np.asarray(thumb, dtype=np.float64) @ basis.T
+    coefficients = basis @ pixels @ basis.T
     coefficients[np.abs(coefficients) <= _ZERO * np.abs(coefficients).max()] = 0.0
     return coefficients
 

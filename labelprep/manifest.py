@@ -10,6 +10,7 @@ each column's meaning here and the stage that computes it by the ``stage`` field
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import json
 import os
 import tempfile
@@ -72,6 +73,7 @@ _COLUMN_LIST = [
     Column("phash_c70", "str", "scan", "perceptual hash (as phash) of the centred box keeping 70% of each side"),
     Column("phash_mirror", "str", "scan", "perceptual hash of the left-right mirrored image; used by group --flips"),
     Column("detail", "Float64", "scan", "share of the hash thumbnail's AC energy above the hashed frequencies; below 0.05 the image counts as low-detail"),
+    Column("sketch", "str", "scan", "the 32x32 grayscale thumbnail behind phash, its 1,024 bytes in base64; compares two images on their pixels"),
     # grouping
     Column("bundle", "Int64", "group", "id of the rows that must share one split: near-duplicate clusters joined with user groups"),
     Column("mixed_labels", "boolean", "group", "the row's near-duplicate cluster holds more than one label (label-conflict unless kept)"),
@@ -296,25 +298,54 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
     return path
 
 
-def guard_output(path, *, force: bool, marker: bytes | None = None) -> None:
-    """Refuse to replace a file that labelprep did not write, unless ``force``.
+def guard_output(path, *, force: bool) -> None:
+    """The one output guard: refuse to replace a file that labelprep did not write, unless ``force``.
 
-    A manifest is recognised by its sidecar or its first bytes; other outputs (reports) by
-    ``marker`` appearing in their first 4 KiB.
+    labelprep wrote ``path`` when it is a manifest (it has a sidecar, or it is a folder of part
+    files), or when the ledger of its folder (:data:`LEDGER_NAME`, kept by :func:`write_text`)
+    holds its name with the digest of the bytes it has now: a report the user edited since is
+    theirs, and is not replaced either. Call it before long work, so a refusal costs nothing.
     """
     path = Path(path)
     if not path.exists() or force:
         return
     if path.is_dir():
-        if marker is None and part_files(path):
+        if part_files(path):
             return
         raise OutputExistsError(f"{path} is a folder; give a file name")
-    if marker is None and (sidecar_path(path).is_file() or _looks_like_manifest(path)):
+    if sidecar_path(path).is_file() or _written_here(path):
         return
-    if marker is not None and marker in _head(path, 4096):
-        return
-    what = "a labelprep manifest" if marker is None else "a labelprep output"
-    raise OutputExistsError(f"{path} exists and is not {what}; pass --force to replace it")
+    raise OutputExistsError(f"{path} exists and labelprep did not write it; pass --force to replace it")
+
+
+# beside the outputs of write_text: {"files": {name: sha256 of the bytes labelprep wrote}}
+LEDGER_NAME = ".labelprep-outputs.json"
+
+
+def _ledger(folder: Path) -> dict:
+    try:
+        files = json.loads((folder / LEDGER_NAME).read_text(encoding="utf-8")).get("files", {})
+    except (OSError, ValueError, AttributeError):
+        return {}
+    return files if isinstance(files, dict) else {}
+
+
+def _written_here(path: Path) -> bool:
+    expected = _ledger(path.parent).get(path.name)
+    if not isinstance(expected, str):
+        return False
+    try:
+        return hashlib.sha256(path.read_bytes()).hexdigest() == expected
+    except OSError:
+        return False
+
+
+def _note_written(path: Path, data: bytes) -> None:
+    files = _ledger(path.parent)
+    files[path.name] = hashlib.sha256(data).hexdigest()
+    text = json.dumps({"format": "labelprep-outputs/1", "files": files}, indent=2, sort_keys=True) + "\n"
+    with atomic_path(path.parent / LEDGER_NAME) as tmp:
+        Path(tmp).write_text(text, encoding="utf-8")
 
 
 def part_files(path) -> list:
@@ -402,19 +433,6 @@ def _swap_in(new: Path, path: Path) -> None:
         old.unlink()
 
 
-def _head(path: Path, n: int) -> bytes:
-    try:
-        with open(path, "rb") as fh:
-            return fh.read(n)
-    except OSError:
-        return b""
-
-
-def _looks_like_manifest(path: Path) -> bool:
-    head = _head(path, 64)
-    return head.startswith(b"path,") or head.startswith(b"PAR1")
-
-
 @contextlib.contextmanager
 def atomic_path(path) -> Iterator[str]:
     """Yield a temporary name beside ``path``; on success rename it over ``path``, else remove it.
@@ -449,11 +467,21 @@ def atomic_path(path) -> Iterator[str]:
         raise
 
 
-def write_text(path, text: str, *, force: bool = True) -> Path:
-    """Write a text output (report, list) atomically."""
+def write_text(path, text: str, *, force: bool = False, ledger: bool = True) -> Path:
+    """Write a text output (report, audit, list) atomically, through :func:`guard_output`.
+
+    With ``ledger`` the ledger beside it then records the digest of what was written, so
+    labelprep may replace the file later without ``force`` as long as nobody changed it; an
+    export's lists go without (its folder is replaced as a whole, and a training framework
+    should find only the split folders and lists there).
+    """
     path = Path(path)
+    guard_output(path, force=force)
+    data = text.encode("utf-8")
     with atomic_path(path) as tmp:
-        Path(tmp).write_text(text, encoding="utf-8")
+        Path(tmp).write_bytes(data)
+    if ledger:
+        _note_written(path, data)
     return path
 
 

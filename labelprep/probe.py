@@ -54,7 +54,7 @@ def blank_facts() -> dict:
             "has_gps": None, "fault": "", "fault_detail": "",
             # the columns of hashing.fingerprint, so every row has the same keys (a rescan's cache)
             "phash": "", "phash_c80": "", "phash_c70": "", "phash_mirror": "", "detail": None,
-            "spread": None}
+            "spread": None, "sketch": ""}
 
 
 class _OutOfTime(BaseException):

@@ -89,7 +89,7 @@ _PRECEDENCE = ("test", "val", "train")
 _PRECEDENCE_RANK = {name: i for i, name in enumerate(_PRECEDENCE)}
 
 
-def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, keep_given=False,
+def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, resplit=False,
           progress=None):
     """Assign every usable row to train, val or test, keeping each unit in one split.
 
@@ -112,10 +112,11 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
         ``path``) keeps its split (and its fold, when folds are asked and it had one); only the
         other rows are placed. A new row in a unit with a kept row follows it; a unit holding
         kept rows of several splits follows test, then val, then train.
-    keep_given : bool
-        Without ``keep_from``, keep every row in its ``given_split`` (the train/val/test folder
-        it was found in, matched by path) the way ``keep_from`` keeps rows, and place only rows
-        outside such folders (see :func:`given_assignment`).
+    resplit : bool
+        Without ``keep_from``, a manifest of a ``ROOT/<train|val|test>/<label>/`` tree keeps
+        every row in its ``given_split`` (the folder it was found in, matched by path) the way
+        ``keep_from`` keeps rows, and places only rows outside such folders (see
+        :func:`given_assignment`); ``resplit=True`` splits it anew.
     progress : callable, optional
         ``progress(iterable, total=int, label=str)`` wrapped around the one-by-one placement.
 
@@ -146,7 +147,7 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     folds = _check_folds(folds)
     if keep_from is not None:
         _check_manifest(keep_from, "keep_from", ("path", "split"))
-    elif keep_given:
+    elif not resplit:
         keep_from = given_assignment(manifest)
 
     order = manifest["path"].astype(str).argsort(kind="stable").to_numpy()

@@ -7,7 +7,7 @@ import skimage.data
 from PIL import Image
 
 from labelprep.clusters import LOW_DETAIL
-from labelprep.hashing import fingerprint
+from labelprep.hashing import fingerprint, sketch_pixels
 
 
 def bits_apart(a: str, b: str) -> int:
@@ -124,3 +124,18 @@ class TestTransform:
 def test_rejects_non_image():
     with pytest.raises(TypeError, match="PIL.Image.Image, got ndarray"):
         fingerprint(np.zeros((8, 8)))
+
+
+def test_sketch_is_the_thumbnail_the_phash_is_taken_from():
+    """The sketch decodes to imagehash's own pHash thumbnail of scikit-image's astronaut photo
+    (imagehash.phash: convert("L"), resize to 32x32 with Lanczos), so the pHash of the sketch's
+    pixels is the file's phash, and an empty cell decodes to zeros."""
+    img = Image.fromarray(skimage.data.astronaut())
+    fp = fingerprint(img)
+    pixels = sketch_pixels([fp["sketch"], ""])
+    reference = np.asarray(img.convert("L").resize((32, 32), Image.Resampling.LANCZOS))
+    assert np.array_equal(pixels[0], reference)
+    assert str(imagehash.phash(Image.fromarray(pixels[0]))) == fp["phash"]
+    assert not pixels[1].any()
+    with pytest.raises(ValueError, match="1024 bytes"):
+        sketch_pixels([fp["sketch"][:100]])

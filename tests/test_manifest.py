@@ -79,7 +79,7 @@ class TestWriting:
         """A file labelprep did not write is never replaced without force."""
         target = tmp_path / "notes.csv"
         target.write_text("name,score\nx,1\n")
-        with pytest.raises(OutputExistsError, match="not a labelprep manifest"):
+        with pytest.raises(OutputExistsError, match="labelprep did not write it"):
             manifest.write(_sample(), target)
         assert target.read_text() == "name,score\nx,1\n"
         manifest.write(_sample(), target, force=True)

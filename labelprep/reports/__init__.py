@@ -36,8 +36,8 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
         The manifest's sidecar (:func:`labelprep.manifest.read_sidecar`): the seed, root and stage
         options it records are shown.
     force : bool
-        Replace output files that labelprep did not write (reports are recognised by the word
-        "labelprep" near their start).
+        Replace output files that labelprep did not write (see
+        :func:`labelprep.manifest.guard_output`).
 
     Returns
     -------
@@ -73,20 +73,20 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
 
     for target in (json, markdown, html):
         if target is not None:
-            guard_output(target, force=force, marker=b"labelprep")
+            guard_output(target, force=force)  # all of them before the work
     m = _complete(manifest)
     summary = _summary(m, meta or {})
 
     if json is not None:
-        write_text(json, to_json(summary))
+        write_text(json, to_json(summary), force=force)
     if markdown is not None:
         from .text import markdown as render_markdown
 
-        write_text(markdown, render_markdown(summary))
+        write_text(markdown, render_markdown(summary), force=force)
     if html is not None:
         from .page import render
 
-        write_text(html, render(m, summary, root=root))
+        write_text(html, render(m, summary, root=root), force=force)
     return summary
 
 
