@@ -95,9 +95,11 @@ def copy_match(manifest, row, code: str) -> str:
     ``exact-copy`` names another file with the same bytes, ``near-copy`` another member of its
     cluster (preferring one with different bytes), ``label-conflict`` a member with another label.
     """
+    import pandas as pd
+
     members = manifest
-    if "dup_group" in manifest.columns and row.get("dup_group") is not None and str(row.get("dup_group")) not in ("", "<NA>", "nan"):
-        members = manifest[manifest["dup_group"].astype("string") == str(row["dup_group"])]
+    if "dup_group" in manifest.columns and not pd.isna(row.get("dup_group")):
+        members = manifest[manifest["dup_group"] == row["dup_group"]]
     others = members[members["path"] != row["path"]].sort_values("path", kind="stable")
     if code == "exact-copy" and "sha256" in others.columns:
         same = others[others["sha256"] == row["sha256"]]
