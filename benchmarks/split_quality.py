@@ -17,6 +17,18 @@ split), size deviation (largest ``|rows in split / usable rows - ratio|``), clas
 unassigned. Targets (issue 5): zero leakage, size deviation <= 0.02, class-share deviation at
 most half of the better baseline's, no more than 1 % left unassigned.
 
+With ``--files`` it also runs the digits as real files (issue 13): each digit upsampled to 64x64
+with nearest-neighbour (PNG), an imbalanced subset of about 880 (class ``c`` keeps ``0.825**c``
+of its images) and writer-like groups (shuffled, cut into groups of 1 to 12) given in a label
+table, through scan -> check -> group -> split, twice: with the group stage as it is (its
+near-duplicate links) and with true clusters (every digit is a distinct image, so only
+byte-identical files may be linked: the hashes are blanked before grouping). Per split it prints
+the size deviation, the classes present and the largest class-share deviation, next to
+scikit-learn's ``StratifiedGroupKFold`` folded 8/1/1 on the same rows and the writer groups (the
+reference). Target: every class in every split, size deviation <= 0.02, largest class-share
+deviation <= half of the reference's; the diagnosis of :mod:`labelprep.split_diagnosis` is
+printed for each run that misses.
+
 With ``--scale N`` it also splits a synthetic manifest of ``N`` rows (100 classes with Zipf
 shares, ``N / 5`` groups of mixed classes, as in the million-row pipeline benchmark) and prints
 the time and the same figures; the target there is well under a minute for 1,000,000 rows.
@@ -26,7 +38,8 @@ classes, one unit each, as in issue 18's report) for each K, and prints the seco
 per fold, the log-log growth exponent between the smallest and the largest K (target: at most 1,
 no worse than linear in K) and how far the fold sizes are from even.
 
-Run: ``python benchmarks/split_quality.py [--seeds 10] [--scale 1000000] [--folds 5,20,80,180]``.
+Run: ``python benchmarks/split_quality.py [--seeds 10] [--files [--file-seeds 3]] [--scale 1000000]
+[--folds 5,20,80,180]``.
 """
 
 from __future__ import annotations
@@ -105,6 +118,79 @@ def measure(rows: pd.DataFrame, assigned: np.ndarray) -> dict:
             "unassigned": 1 - len(placed) / len(frame)}
 
 
+def digit_files(folder, seed: int):
+    """Write the imbalanced digits as 64x64 PNGs under ``folder/img`` and a label table with
+    writer-like groups at ``folder/labels.csv``; return the table's path."""
+    from PIL import Image
+    from sklearn.datasets import load_digits
+
+    digits = load_digits()
+    rng = np.random.default_rng(seed)
+    keep = rng.random(digits.target.size) < 0.825 ** digits.target
+    index = np.flatnonzero(keep)
+    order = rng.permutation(index.size)
+    sizes = rng.integers(1, 13, size=index.size)
+    group_of_slot = np.repeat(np.arange(sizes.size), sizes)[: index.size]
+    group = np.empty(index.size, dtype=np.int64)
+    group[order] = group_of_slot
+    (folder / "img").mkdir(parents=True)
+    for i in index:
+        pixels = (digits.images[i] * (255 / 16)).round().astype(np.uint8)
+        Image.fromarray(pixels).resize((64, 64), Image.NEAREST).save(folder / "img" / f"d{i:04d}.png")
+    table = folder / "labels.csv"
+    pd.DataFrame({"path": [f"img/d{i:04d}.png" for i in index], "label": digits.target[index].astype(str),
+                  "group": [f"w{g:03d}" for g in group]}).to_csv(table, index=False)
+    return table
+
+
+def file_runs(seeds: int) -> None:
+    """The digits as files through the pipeline, with and without the group stage's near links."""
+    import tempfile
+    from pathlib import Path
+
+    from labelprep.checks import check
+    from labelprep.clusters import group
+    from labelprep.reports.split_findings import split_lines
+    from labelprep.scanner import scan
+    from labelprep.split_diagnosis import diagnose_split
+    from labelprep.splits import split
+
+    print("\n== digits as files: 64x64 nearest-neighbour PNGs, writer groups from a label table ==")
+    print(f"{'seed':<5}{'clusters':<15}{'rows':>6}{'placed':>8}  {'size dev train/val/test':<26}"
+          f"{'classes t/v/t':<15}{'share dev':>10}{'SGKF share dev':>16}{'ratio':>7}  target")
+    ratios = {"as grouped": [], "true clusters": []}
+    verdicts = {"as grouped": True, "true clusters": True}
+    for seed in range(seeds):
+        with tempfile.TemporaryDirectory() as tmp:
+            table = digit_files(Path(tmp), seed)
+            scanned = check(scan(tmp, labels=str(table), jobs=1))
+        blank = scanned.copy()
+        for column in [c for c in blank.columns if c.startswith("phash")]:
+            blank[column] = ""
+        for name, frame in (("as grouped", scanned), ("true clusters", blank)):
+            grouped = group(frame)
+            out = split(grouped, ratios=RATIOS, seed=seed)
+            placed = out[out["split"] != ""].reset_index(drop=True)
+            ours, ref = measure(placed, placed["split"].to_numpy(dtype=object)), None
+            ref = measure(placed, stratified_group_kfold(placed, seed))
+            devs = [abs((placed["split"] == n).mean() - r) for n, r in zip(NAMES, RATIOS)]
+            present = [placed.loc[placed["split"] == n, "label"].nunique() for n in NAMES]
+            every = placed["label"].nunique()
+            ratio = ours["share_dev"] / ref["share_dev"]
+            met = max(devs) <= 0.02 and min(present) == every and ratio <= 0.5
+            verdicts[name] &= met
+            ratios[name].append(ratio)
+            print(f"{seed:<5}{name:<15}{len(out):>6}{len(placed):>8}  "
+                  f"{'/'.join(f'{d:.3f}' for d in devs):<26}{'/'.join(map(str, present)) + f' of {every}':<15}"
+                  f"{ours['share_dev']:>10.4f}{ref['share_dev']:>16.4f}{ratio:>7.2f}  "
+                  f"{'met' if met else 'MISSED'}")
+            for line in split_lines(diagnose_split(out, ratios=RATIOS))[:6]:
+                print(f"       {line}")
+    for name, values in ratios.items():
+        print(f"{name}: share dev / StratifiedGroupKFold's, mean over {seeds} seeds "
+              f"{np.mean(values):.3f} (target <= 0.5); {'targets met' if verdicts[name] else 'TARGETS MISSED'}")
+
+
 def synthetic_rows(n: int, seed: int = 0) -> pd.DataFrame:
     """``n`` rows, 100 classes with shares proportional to 1/rank, ``n // 5`` random groups."""
     rng = np.random.default_rng(seed)
@@ -153,6 +239,9 @@ def fold_scaling(ks: list[int], repeat: int = 2) -> None:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, default=10)
+    parser.add_argument("--files", action="store_true",
+                        help="also run the digits as 64x64 files through scan, check, group, split")
+    parser.add_argument("--file-seeds", type=int, default=3)
     parser.add_argument("--scale", type=int, default=0, metavar="N",
                         help="also time a synthetic manifest of N rows")
     parser.add_argument("--folds", default="", metavar="K,K,...",
@@ -195,6 +284,8 @@ def main() -> None:
     verdict = (ours.leaks.max() == 0 and ours.size_dev.max() <= 0.02 and ratio <= 0.5
                and ours.unassigned.max() <= 0.01)
     print("targets met" if verdict else "TARGETS MISSED")
+    if args.files:
+        file_runs(args.file_seeds)
     if args.scale:
         scale(args.scale)
 

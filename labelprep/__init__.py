@@ -26,6 +26,7 @@ _EXPORTS = {
     "group": "clusters",
     "split": "splits",
     "split_summary": "splits",
+    "diagnose_split": "split_diagnosis",
     "audit": "audits",
     "report": "reports",
     "export": "exports",

@@ -124,10 +124,22 @@ SCAN_OPTIONS = options.click_options("scan")
 CHECK_OPTIONS = options.click_options("check")
 GROUP_OPTIONS = options.click_options("group")
 SPLIT_OPTIONS = options.click_options("split")
-_fail_on = click.option("--fail-on", type=click.Choice(["empty", "error", "warning", "never"]), default="never",
+_fail_on = click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="never",
                         show_default=True,
-                        help="Exit with status 1: empty when a split or a class ends up with no file; "
-                             "error also when any file has an error; warning also on warnings.")
+                        help="Exit with status 1 when any file has an issue of this severity or worse.")
+# the split's own gate: its ratios or class coverage missed (labelprep.split_diagnosis says why)
+SHORTFALL = "shortfall"
+_SHORTFALL_HELP = (f"'shortfall' exits with status 1 when the split misses a ratio by more than "
+                   f"{defaults.SPLIT_TOLERANCE:.0%} of the files or leaves a class out of a split; "
+                   "the warning names the cause.")
+_EMPTY_HELP = "'empty' exits with status 1 when a split or a class ends up with no file. "
+_fail_on_split = click.option("--fail-on", type=click.Choice([SHORTFALL, "empty", "never"]), default="never",
+                              show_default=True,
+                              help=_SHORTFALL_HELP + " " + _EMPTY_HELP + "'shortfall' includes it.")
+_fail_on_prepare = click.option(
+    "--fail-on", type=click.Choice(["empty", "error", "warning", SHORTFALL, "never"]), default="never",
+    show_default=True, help=_EMPTY_HELP + "'error' and 'warning' also exit 1 when any file has an "
+                            "issue of this severity or worse. " + _SHORTFALL_HELP)
 
 
 def _progress(quiet: bool):
@@ -286,16 +298,20 @@ def group(manifest_path, force, quiet, **chosen):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
+@_fail_on_split
 @_force
 @_quiet
-def split(manifest_path, force, quiet, **chosen):
+def split(manifest_path, fail_on, force, quiet, **chosen):
     """Assign train/val/test so that no cluster or group spans two splits.
 
     Two ratios mean train,test. With --folds K the split holds train and test and every train
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
     path) keep their split and only new files are placed. A manifest of a train/val/test folder
-    tree keeps the split of its folders unless --resplit.
+    tree keeps the split of its folders unless --resplit. When the bundles (clusters joined
+    with groups) make a ratio or a class unreachable, it says why and which files bridge them.
     """
+    from .reports.split_findings import warning_lines
+    from .split_diagnosis import diagnose_split
     from .splits import given_assignment, split as run, split_summary
 
     old = _read(chosen["keep_from"]) if chosen["keep_from"] is not None else None
@@ -306,14 +322,19 @@ def split(manifest_path, force, quiet, **chosen):
     sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
     _say(quiet, "  ".join(sizes + [f"left out: {summary['left_out']}"]))
-    _print_split_notes(m, summary, quiet, ratios=chosen["ratios"], folds=chosen["folds"],
-                       given=given is not None)
+    empty = _print_split_notes(m, summary, quiet, ratios=chosen["ratios"], folds=chosen["folds"],
+                               given=given is not None)
+    findings = diagnose_split(m, ratios=chosen["ratios"], folds=chosen["folds"])
+    for line in warning_lines(findings):
+        _say(quiet, line, err=True)
+    _gate_split(findings, fail_on, empty)
 
 
 def _print_split_notes(m, summary: dict, quiet: bool, *, ratios, folds, given=False) -> list:
     """What was kept of an earlier (or the given) split, then warnings for empty splits and
-    classes, classes missing from a split and thin folds; returns the empty-split warnings."""
-    from .advice import empty_parts, fold_warnings, keep_lines, missing_lines
+    classes and for thin folds; returns the empty-split warnings. (Classes missing from a split
+    are told by the split diagnosis.)"""
+    from .advice import empty_parts, fold_warnings, keep_lines
 
     if "kept" in summary:
         lines = keep_lines(summary, m)
@@ -322,8 +343,18 @@ def _print_split_notes(m, summary: dict, quiet: bool, *, ratios, folds, given=Fa
         _say(quiet, lines[0])
         _warn(lines[1:])
     empty = empty_parts(m, ratios=ratios, folds=folds)
-    _warn(empty + missing_lines(summary) + fold_warnings(summary, folds))
+    _warn(empty + fold_warnings(summary, folds))
     return empty
+
+
+def _gate_split(findings, fail_on: str, empty=()):
+    from .errors import GateFailed
+
+    if fail_on in (SHORTFALL, "empty") and empty:
+        raise GateFailed(f"--fail-on {fail_on}: {empty[0]}")
+    if fail_on == SHORTFALL and findings is not None and not findings["reached"]:
+        raise GateFailed(f"--fail-on {SHORTFALL}: the split misses its targets "
+                         f"(cause: {findings['cause']})")
 
 
 @main.command()
@@ -427,7 +458,7 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @click.option("--out", "out", required=True, type=click.Path(file_okay=False, path_type=Path),
               metavar="DIR", help="Folder for manifest.csv, report.json and report.html.")
 @options.click_options(*options.STAGES)
-@_fail_on
+@_fail_on_prepare
 @_force
 @_quiet
 def prepare(roots, out, fail_on, quiet, **chosen):
@@ -442,7 +473,10 @@ def prepare(roots, out, fail_on, quiet, **chosen):
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, progress=_progress(quiet), **chosen)
     empty = _print_outcome(m, summary, out, quiet, ratios=chosen["ratios"], folds=chosen["folds"])
-    _gate(m, fail_on, empty)
+    if fail_on == SHORTFALL:
+        _gate_split(summary["split_diagnosis"], fail_on, empty)
+    else:
+        _gate(m, fail_on, empty)
 
 
 def _print_outcome(m, summary, out: Path, quiet: bool, *, ratios=None, folds=None) -> list:

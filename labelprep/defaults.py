@@ -24,3 +24,6 @@ MEMBER_BYTES = 512 * 2**20
 # members up to 1 MiB are exempt, as a flat image may compress that well and costs nothing
 MAX_RATIO = 100
 RATIO_GRACE = 2**20
+# a split whose share of the rows is this far from its ratio misses it (labelprep.split_diagnosis);
+# the size-deviation target of benchmarks/split_quality.py
+SPLIT_TOLERANCE = 0.02

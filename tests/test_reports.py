@@ -21,7 +21,7 @@ from labelprep.errors import ParameterError
 from labelprep.reports import page
 
 SUMMARY_KEYS = ["format", "version", "files", "in_split", "left_out", "splits", "classes", "balance",
-                "issues", "near_duplicates", "seed", "root", "options"]
+                "issues", "near_duplicates", "split_diagnosis", "seed", "root", "options"]
 
 
 def make_report_dataset(root: Path) -> pd.DataFrame:

@@ -44,7 +44,8 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     dict
         The summary, JSON-able: ``format``, ``version``, ``files``, ``in_split``, ``left_out``,
         ``splits``, ``classes``, ``balance`` (:func:`labelprep.balance.by_split`), ``issues``,
-        ``near_duplicates``, ``seed``, ``root``, ``options``.
+        ``near_duplicates``, ``split_diagnosis`` (:func:`labelprep.split_diagnosis.diagnose_split`,
+        None before a split), ``seed``, ``root``, ``options``.
 
     Examples
     --------
@@ -148,6 +149,7 @@ def _summary(m, meta: dict) -> dict:
         "balance": balance,
         "issues": _issues(m),
         "near_duplicates": _near_duplicates(m),
+        "split_diagnosis": _split_diagnosis(m, meta) if in_split else None,
         "seed": _seed(meta),
         "root": meta.get("root"),
         "options": _jsonable(meta.get("stages", {})),
@@ -217,6 +219,20 @@ def _near_duplicates(m) -> dict:
         "label_conflicts": int(table["conflict"].sum()),
         "across_splits": int(table["leak"].sum()),
     }
+
+
+def _split_diagnosis(m, meta: dict) -> dict:
+    """The split's diagnosis, against the ratios and folds the sidecar records (else the defaults)."""
+    from ..defaults import RATIOS
+    from ..split_diagnosis import diagnose_split
+
+    options = {}
+    for stage in ("prepare", "split"):  # the split stage, when run last, wrote the split
+        recorded = meta.get("stages", {}).get(stage, {})
+        recorded = recorded.get("options", recorded) if isinstance(recorded, dict) else {}
+        if isinstance(recorded, dict) and recorded.get("ratios"):
+            options = recorded
+    return diagnose_split(m, ratios=tuple(options.get("ratios", RATIOS)), folds=options.get("folds"))
 
 
 def _seed(meta: dict):

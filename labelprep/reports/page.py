@@ -44,6 +44,7 @@ def render(m, summary: dict, *, root=None) -> str:
         balance_header=balance_header, balance_rows=balance_rows,
         source_header=source_header, source_rows=source_table,
         warnings=_warning_lines(summary),
+        **_shortfall(summary),
         issues=_issue_files(m, summary),
         files_per_issue=FILES_PER_ISSUE,
         clusters=clusters, clusters_total=clusters_total,
@@ -52,6 +53,16 @@ def render(m, summary: dict, *, root=None) -> str:
         has_root=root is not None,
         options=[(stage, flatten(value)) for stage, value in summary["options"].items()],
     )
+
+
+def _shortfall(summary: dict) -> dict:
+    """The split diagnosis for the page: headline lines, and each listed bundle with its line."""
+    from .split_findings import bundle_lines, split_lines
+
+    found = summary.get("split_diagnosis")
+    lines = split_lines(found, bundles=False)
+    bundles = [(bundle_lines(b)[0].strip(), b) for b in found["bundles"]] if lines else []
+    return {"shortfall_lines": lines, "shortfall_bundles": bundles}
 
 
 def _colours(summary: dict) -> dict:

@@ -15,6 +15,7 @@ def terminal(summary: dict, *, issues: bool = True) -> str:
         parts += ["", _table(*_issue_rows(summary), markdown=False)]
     parts += ["", _duplicates_line(summary)]
     parts += [f"warning: {line}" for line in _warning_lines(summary)]
+    parts += _split_warnings(summary)
     return "\n".join(parts) + "\n"
 
 
@@ -28,6 +29,9 @@ def markdown(summary: dict) -> str:
     warnings = _warning_lines(summary)
     if warnings:
         parts += ["", "## Thin classes", ""] + [f"- {line}" for line in warnings]
+    shortfall = _split_warnings(summary, markdown=True)
+    if shortfall:
+        parts += ["", "## Why the split misses its targets", ""] + shortfall
     parts += ["", "## Issues", ""]
     parts += [_table(*_issue_rows(summary), markdown=True)] if summary["issues"] else ["No issues found."]
     parts += ["", "## Near-duplicates", "", _duplicates_line(summary), "", "## Made with", ""]
@@ -35,6 +39,16 @@ def markdown(summary: dict) -> str:
     parts += [f"- {stage}.{name}: {value}" for stage, options in summary["options"].items()
               for name, value in flatten(options)]
     return "\n".join(parts) + "\n"
+
+
+def _split_warnings(summary: dict, *, markdown: bool = False) -> list[str]:
+    """The split diagnosis as terminal warnings, or as Markdown bullets (bundle lines nested)."""
+    from .split_findings import split_lines, warning_lines
+
+    found = summary.get("split_diagnosis")
+    if not markdown:
+        return warning_lines(found)
+    return [f"  - {line.strip()}" if line.startswith(" ") else f"- {line}" for line in split_lines(found)]
 
 
 def _headline(summary: dict) -> str:
