@@ -434,14 +434,10 @@ def audit(target, fail_on, json_path, max_distance, force, quiet, **scan_options
 @_quiet
 def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
     """Lay out DEST/<split>/<label>/<file> and DEST/<split>.csv for any training framework."""
-    from .errors import InputError
     from .exports import export as run
-    from .manifest import read_sidecar
 
-    root = root or _root_from(read_sidecar(manifest_path))
-    if root is None:
-        raise InputError(f"cannot tell which folder {manifest_path}'s paths are relative to; pass --root")
-    written = run(_read(manifest_path), dest, root=root, mode=mode, force=force,
+    # given the path, export reads the manifest and finds the root in its sidecar
+    written = run(manifest_path, dest, root=root, mode=mode, force=force,
                   strip_metadata=strip_metadata, progress=_progress(quiet))
     methods = written["method"].value_counts()  # a hardlink falls back to a copy across filesystems
     _say(quiet, f"{len(written)} files placed under {dest}: "

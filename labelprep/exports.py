@@ -156,7 +156,7 @@ def _manifest_and_root(manifest, root):
             root = sources.roots_of(read_sidecar(path))
             if root is None:
                 raise InputError(f"cannot tell which folder {path}'s paths are relative to: its "
-                                 "sidecar records no root; pass root (--root)")
+                                 "sidecar records no root; pass --root")
     if root is None:
         raise ParameterError("root is needed with a manifest given as a DataFrame (or give the "
                              "manifest's path: its sidecar records the root)")
