@@ -94,6 +94,14 @@ def copy_match(manifest, row, code: str) -> str:
 
     ``exact-copy`` names another file with the same bytes, ``near-copy`` another member of its
     cluster (preferring one with different bytes), ``label-conflict`` a member with another label.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": ["a.png", "b.png"], "label": ["cat", "cat"],
+    ...                   "sha256": ["1", "2"], "dup_group": [0, 0]})
+    >>> copy_match(m, m.iloc[1], "near-copy")
+    'looks like a.png'
     """
     import pandas as pd
 
@@ -134,14 +142,14 @@ def keep_lines(summary: dict, manifest) -> list[str]:
     return lines
 
 
-def missing_lines(summary: dict) -> list[str]:
-    """A line per split lacking classes found in other splits (:func:`labelprep.split_summary`)."""
-    return [f"{name} has no file of class {', '.join(labels)} (too few groups or clusters to "
-            "reach every split)" for name, labels in summary["missing"].items()]
-
-
 def fold_warnings(summary: dict, folds) -> list[str]:
-    """A warning per class with fewer units in train than ``folds`` (some folds then lack it)."""
+    """Warnings when ``folds`` exceeds the units in train (empty folds) or of one class there.
+
+    Examples
+    --------
+    >>> fold_warnings({"fold_units": 9, "units_per_class": {"cat": 4, "dog": 5}}, 5)[0]
+    'warning: --folds 5 is more than the 4 groups, clusters or single files of class cat in train, so 1 folds have no cat file'
+    """
     if folds is None or "fold_units" not in summary:
         return []
     lines = []
@@ -155,7 +163,13 @@ def fold_warnings(summary: dict, folds) -> list[str]:
 
 
 def scan_notes(facts: dict) -> list[str]:
-    """Lines for what a scan left out on purpose (its own outputs, junk) and empty folders."""
+    """Lines for what a scan left out on purpose (its own outputs, junk) and empty folders.
+
+    Examples
+    --------
+    >>> scan_notes({"excluded": ["prep"], "empty_folders": ["eel"]})
+    ["left out labelprep's own files inside the root: prep", 'warning: 1 empty folders, so no class or file from them: eel']
+    """
     lines = []
     if facts.get("excluded"):
         lines.append(f"left out labelprep's own files inside the root: {', '.join(facts['excluded'][:5])}")
