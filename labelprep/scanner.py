@@ -112,10 +112,10 @@ def walk(root, *, include_hidden: bool = False, exclude=frozenset()) -> Listing:
         before = len(files) + len(links) + len(misnamed) + len(refused)
         for entry in entries:
             rel = f"{rel_dir}/{entry.name}" if rel_dir else entry.name
-            if not include_hidden and is_junk(entry.name):
-                skipped.append(rel)
-            elif rel in exclude:
+            if rel in exclude:
                 excluded.append(rel)
+            elif not include_hidden and is_junk(entry.name):
+                skipped.append(rel)
             elif not _is_utf8(entry.name):
                 misnamed.append(_escaped(rel))
             elif entry.is_symlink():
@@ -322,11 +322,12 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
 
 def own_files(manifest_path) -> list:
     """The files labelprep writes for manifest ``manifest_path``: itself, its sidecar, its scan
-    cache and its journal (what a scan of a root holding them must not index)."""
-    from .manifest import cache_path, sidecar_path
+    cache, its journal and the ledger of outputs in its folder (what a scan of a root holding
+    them must not index)."""
+    from .manifest import LEDGER_NAME, cache_path, sidecar_path
 
-    return [Path(manifest_path), sidecar_path(manifest_path), cache_path(manifest_path),
-            journal_path(manifest_path)]
+    path = Path(manifest_path)
+    return [path, sidecar_path(path), cache_path(path), journal_path(path), path.parent / LEDGER_NAME]
 
 
 def _inside(root, paths) -> frozenset:
