@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from . import defaults
 from .errors import ParameterError
+from .validation import check_manifest
 
 SPLIT_ORDER = ("train", "val", "test")
 # how the audit's header names the split it looked at
@@ -66,19 +67,13 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
     >>> result["balance"]["splits"]["test"]["counts"]
     {'cat': 1, 'dog': 1}
     """
-    import pandas as pd
-
     from .balance import by_split
 
-    if not isinstance(manifest, pd.DataFrame):
-        raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
+    check_manifest(manifest, ["path", "label"])
     if isinstance(max_distance, bool) or not isinstance(max_distance, int):
         raise TypeError(f"max_distance must be an int, got {type(max_distance).__name__}")
     if not 0 <= max_distance <= 64:
         raise ParameterError(f"max_distance must be 0 to 64 bits, got max_distance={max_distance!r}")
-    for column in ("path", "label"):
-        if column not in manifest.columns:
-            raise ParameterError(f"the manifest has no {column!r} column")
     column = _split_column(manifest, split_column)
 
     frame = manifest.assign(_split=manifest[column].fillna("").astype(str),
@@ -102,6 +97,50 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
             "near_leaks": near, "group_leaks": groups,
             "leaking_files": len(set(path[a]) | set(path[b]) | in_groups),
             "balance": by_split(manifest, split_column=column)}
+
+
+def audit_path(target, *, max_distance=defaults.MAX_DISTANCE, split_column=None, progress=None,
+               **scan_options) -> dict:
+    """:func:`audit` of a manifest file, or of a folder laid out ``ROOT/<train|val|test>/<label>/``.
+
+    A folder is scanned first, in memory only (nothing is written beside it), with
+    ``scan_options`` (those of :func:`labelprep.scan`: ``jobs``, ``include_hidden``, ...); a
+    manifest (a file, or a folder of Parquet part files) is read, and they do not apply.
+
+    Examples
+    --------
+    >>> result = audit_path("dataset/")                       # doctest: +SKIP
+    >>> leak_gate(result, "leaks")                            # doctest: +SKIP
+    """
+    from pathlib import Path
+
+    from .manifest import read
+    from .scanner import scan
+
+    target = Path(target)
+    if target.is_dir() and not _is_part_folder(target):
+        m = scan(target, progress=progress, **scan_options)
+    else:
+        m = read(target)
+    return audit(m, max_distance=max_distance, split_column=split_column)
+
+
+def _is_part_folder(folder) -> bool:
+    from .manifest import part_files
+
+    return bool(part_files(folder))
+
+
+def leak_gate(result: dict, fail_on: str) -> None:
+    """Raise :class:`~labelprep.errors.GateFailed` when ``fail_on`` is ``"leaks"`` and the
+    :func:`audit` ``result`` holds a pair or a group across splits; ``"never"`` never raises."""
+    from .errors import GateFailed
+
+    if fail_on not in ("leaks", "never"):
+        raise ParameterError(f"fail_on must be 'leaks' or 'never', got fail_on={fail_on!r}")
+    if fail_on == "leaks" and (result["near_leaks"] or result["group_leaks"]):
+        raise GateFailed(f"{len(result['near_leaks'])} near-duplicate pairs and "
+                         f"{len(result['group_leaks'])} groups cross splits")
 
 
 def render(result: dict, *, limit: int = 20) -> str:
@@ -175,8 +214,7 @@ def _split_column(manifest, split_column):
     if split_column is not None:
         if not isinstance(split_column, str):
             raise TypeError(f"split_column must be a column name (str), got {type(split_column).__name__}")
-        if split_column not in manifest.columns:
-            raise ParameterError(f"the manifest has no {split_column!r} column")
+        check_manifest(manifest, [split_column])
         return split_column
     for column in ("split", "given_split"):
         if column in manifest.columns and (manifest[column].fillna("").astype(str) != "").any():

@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 
 from .errors import ParameterError
+from .validation import check_manifest
 
 UNASSIGNED = "unassigned"
 SPLIT_ORDER = ("train", "val", "test")
@@ -81,9 +82,7 @@ def by_split(manifest, *, split_column="split", beta=DEFAULT_BETA, min_count=DEF
     """
     if not isinstance(split_column, str):
         raise TypeError(f"split_column must be a column name (str), got {type(split_column).__name__}")
-    for column in ("label", split_column):
-        if column not in manifest.columns:
-            raise ParameterError(f"the manifest has no {column!r} column (columns: {', '.join(map(str, manifest.columns))})")
+    check_manifest(manifest, ["label", split_column])
     if isinstance(beta, bool) or not isinstance(beta, (int, float)):
         raise TypeError(f"beta must be a number, got {type(beta).__name__}")
     if not 0 <= beta < 1:

@@ -11,7 +11,8 @@ from dataclasses import dataclass
 from typing import Callable
 
 from . import codes, defaults
-from .errors import InputError, ParameterError
+from .errors import ParameterError
+from .validation import check_manifest
 
 # probe faults that have a code of their own (see RULES); any other fault (a decoder error, a
 # damaged header) is reported as unreadable, so no failed file can come out clean
@@ -208,8 +209,7 @@ def check(manifest, *, min_side: int = defaults.MIN_SIDE, max_pixels: int = defa
     Returns
     -------
     DataFrame
-        A copy with the ``issues`` column updated and ``attrs["check"]`` holding the limits; no
-        row is removed.
+        A copy with the ``issues`` column updated; no row is removed.
 
     Raises
     ------
@@ -228,9 +228,7 @@ def check(manifest, *, min_side: int = defaults.MIN_SIDE, max_pixels: int = defa
     >>> check(m)["issues"].tolist()
     ['', 'has-location;too-small;unusual-mode;wrong-extension']
     """
-    missing = [c for c in _NEEDED if c not in manifest.columns]
-    if missing:
-        raise InputError(f"the manifest lacks column(s) {', '.join(missing)}; make it with labelprep scan")
+    check_manifest(manifest, _NEEDED, hint="make it with labelprep scan")
     limits = limits_of(min_side=min_side, max_pixels=max_pixels, max_aspect=max_aspect,
                        min_spread=min_spread)
     out = manifest.copy()
@@ -238,7 +236,6 @@ def check(manifest, *, min_side: int = defaults.MIN_SIDE, max_pixels: int = defa
         out["issues"] = ""
     found = {code: rule.flags(out, limits).to_numpy(dtype=bool) for code, rule in RULES.items()}
     out["issues"] = codes.replace_stage_codes(out["issues"], "check", found)
-    out.attrs["check"] = limits
     return out
 
 
@@ -263,12 +260,12 @@ def reason(row, code: str, *, limits: dict | None = None) -> str:
 def summary_lines(manifest, *, examples: int = 3, limits: dict | None = None) -> list[str]:
     """Lines for the terminal: per code its severity and count, then the first few files and why.
 
-    ``limits`` default to those the manifest was checked with (``attrs["check"]``), else the
-    defaults.
+    ``limits`` are those the manifest was checked with (:func:`limits_of` of the check's
+    options); the defaults when not given.
     """
     from .advice import copy_match
 
-    limits = limits or manifest.attrs.get("check") or limits_of()
+    limits = limits or limits_of()
     tally = codes.counts(manifest["issues"])
     if not tally:
         return ["no issues found"]

@@ -10,7 +10,6 @@ from :data:`labelprep.options.SPEC`.
 
 from __future__ import annotations
 
-import functools
 import os
 from pathlib import Path
 
@@ -111,7 +110,6 @@ def _flag_words(message: str, ctx) -> str:
 _existing_dir = click.Path(exists=True, file_okay=False, dir_okay=True, path_type=Path)
 # a root is a folder or an archive (.zip, .tar, .tar.gz, .tgz); sources.name_roots judges which
 _existing_root = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
-_existing_file = click.Path(exists=True, file_okay=True, dir_okay=False, path_type=Path)
 # a manifest is a file, or a folder of part files (partitioned Parquet); read() tells them apart
 _existing_manifest = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
 
@@ -206,24 +204,11 @@ def scan(roots, output, partitions, force, quiet, **chosen):
     and the source column says it. A rescan decodes only new and changed files (by size and
     modification time); an interrupted scan resumes from the journal it keeps beside MANIFEST.
     """
-    from . import manifest
     from .advice import scan_notes
-    from .scanner import journal_path, own_files, previous_manifest, scan as run
-    from .sources import describe, name_roots
+    from .scanner import scan_to
 
-    manifest.guard_output(output, force=force)
-    if partitions is not None:
-        manifest.check_partitions(partitions, output)
-    journal = journal_path(output)
     root = roots[0] if len(roots) == 1 else list(roots)
-    previous = previous_manifest(output, root=root, max_pixels=chosen["max_pixels"])
-    m = run(root, previous=previous, journal=journal, progress=_progress(quiet), exclude=own_files(output),
-            **chosen)
-    facts = m.attrs.get("scan", {})
-    manifest.write(m, output, meta={**describe(name_roots(root)),
-                                    **options.sidecar("scan", options.record(chosen, "scan"), result=facts)},
-                   force=True, partitions=partitions)
-    journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
+    m, facts = scan_to(root, output, partitions=partitions, force=force, progress=_progress(quiet), **chosen)
     _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
                 f"{facts.get('reused', 0)} unchanged), layout {_layouts(facts.get('layout'))} -> {output}")
     for line in scan_notes(facts):
@@ -235,10 +220,11 @@ def _layouts(chosen) -> str:
     return ", ".join(f"{name}: {how}" for name, how in chosen.items()) if isinstance(chosen, dict) else str(chosen)
 
 
-def _print_issues(m, quiet: bool, examples: int = 3):
-    from .checks import summary_lines
+def _print_issues(m, quiet: bool, checked: dict, examples: int = 3):
+    """The issue lines; ``checked``, the check options the run used, words the reasons."""
+    from .checks import limits_of, summary_lines
 
-    for line in summary_lines(m, examples=examples):
+    for line in summary_lines(m, examples=examples, limits=limits_of(**checked)):
         _say(quiet, line)
 
 
@@ -276,7 +262,7 @@ def check(manifest_path, fail_on, force, quiet, **limits):
     m = run(_read_to_update(manifest_path, force), **limits)
     _write_back(m, manifest_path, "check", {**options.record(limits, "check"), "fail_on": fail_on},
                 force)
-    _print_issues(m, quiet)
+    _print_issues(m, quiet, limits)
     _gate(m, fail_on)
 
 
@@ -312,33 +298,35 @@ def split(manifest_path, fail_on, force, quiet, **chosen):
     """
     from .reports.split_findings import warning_lines
     from .split_diagnosis import diagnose_split
-    from .splits import given_assignment, split as run, split_summary
+    from .splits import split as run, split_summary
 
     old = _read(chosen["keep_from"]) if chosen["keep_from"] is not None else None
     m = run(_read_to_update(manifest_path, force), progress=_progress(quiet), **{**chosen, "keep_from": old})
     _write_back(m, manifest_path, "split", options.record(chosen, "split"), force)
-    given = given_assignment(m) if old is None and not chosen["resplit"] else None
-    summary = split_summary(m, keep_from=old if given is None else given)
+    summary = split_summary(m)
     sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
     _say(quiet, "  ".join(sizes + [f"left out: {summary['left_out']}"]))
-    empty = _print_split_notes(m, summary, quiet, ratios=chosen["ratios"], folds=chosen["folds"],
-                               given=given is not None)
+    empty = _print_split_notes(m, old, quiet, ratios=chosen["ratios"], folds=chosen["folds"],
+                               resplit=chosen["resplit"])
     findings = diagnose_split(m, ratios=chosen["ratios"], folds=chosen["folds"])
     for line in warning_lines(findings):
         _say(quiet, line, err=True)
     _gate_split(findings, fail_on, empty)
 
 
-def _print_split_notes(m, summary: dict, quiet: bool, *, ratios, folds, given=False) -> list:
-    """What was kept of an earlier (or the given) split, then warnings for empty splits and
-    classes and for thin folds; returns the empty-split warnings. (Classes missing from a split
-    are told by the split diagnosis.)"""
+def _print_split_notes(m, old, quiet: bool, *, ratios, folds, resplit=False) -> list:
+    """What was kept of the earlier manifest ``old`` (or of the given split, unless ``resplit``),
+    then warnings for empty splits and classes and for thin folds; returns the empty-split
+    warnings. (Classes missing from a split are told by the split diagnosis.)"""
     from .advice import empty_parts, fold_warnings, keep_lines
+    from .splits import given_assignment, split_summary
 
+    given = given_assignment(m) if old is None and not resplit else None
+    summary = split_summary(m, keep_from=old if given is None else given)
     if "kept" in summary:
         lines = keep_lines(summary, m)
-        if given:
+        if given is not None:
             lines[0] = "kept the split of the train/val/test folders (--resplit splits anew): " + lines[0]
         _say(quiet, lines[0])
         _warn(lines[1:])
@@ -400,16 +388,9 @@ def audit(target, fail_on, json_path, max_distance, force, quiet, **scan_options
     MANIFEST_OR_ROOT is a manifest with a split column, or a folder laid out as
     ROOT/<train|val|test>/<label>/... (scanned first, in memory only).
     """
-    from .audits import audit as run, render
-    from .errors import GateFailed
+    from .audits import audit_path, leak_gate, render
 
-    if target.is_dir():
-        from .scanner import scan as scan_run
-
-        m = scan_run(target, progress=_progress(quiet), **scan_options)
-    else:
-        m = _read(target)
-    result = run(m, max_distance=max_distance)
+    result = audit_path(target, max_distance=max_distance, progress=_progress(quiet), **scan_options)
     if json_path is not None:
         import json
 
@@ -417,9 +398,7 @@ def audit(target, fail_on, json_path, max_distance, force, quiet, **scan_options
 
         write_text(json_path, json.dumps(result, indent=2, sort_keys=True) + "\n", force=force)
     _say(quiet, render(result))
-    if fail_on == "leaks" and (result["near_leaks"] or result["group_leaks"]):
-        raise GateFailed(f"{len(result['near_leaks'])} near-duplicate pairs and "
-                         f"{len(result['group_leaks'])} groups cross splits")
+    leak_gate(result, fail_on)
 
 
 @main.command()
@@ -468,27 +447,32 @@ def prepare(roots, out, fail_on, quiet, **chosen):
 
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, progress=_progress(quiet), **chosen)
-    empty = _print_outcome(m, summary, out, quiet, ratios=chosen["ratios"], folds=chosen["folds"])
+    empty = _print_outcome(m, summary, out, quiet, options.for_stage("check", chosen), chosen)
     if fail_on == SHORTFALL:
         _gate_split(summary["split_diagnosis"], fail_on, empty)
     else:
         _gate(m, fail_on, empty)
 
 
-def _print_outcome(m, summary, out: Path, quiet: bool, *, ratios=None, folds=None) -> list:
-    """The tables, issues and notes of a prepare run; returns the empty-split warnings."""
+def _print_outcome(m, summary, out: Path, quiet: bool, checked: dict, chosen=None) -> list:
+    """The tables, issues and notes of a prepare run (``chosen``: its options, None for the
+    demo's); returns the empty-split warnings."""
     from .advice import scan_notes
+    from .manifest import read_sidecar
     from .reports import terminal_table
 
     # the issues are listed once, with their counts and first files, after the tables
     _say(quiet, terminal_table(summary, issues=False))
     _say(quiet, "\nissues, with the first three files each (the manifest lists them all):")
-    _print_issues(m, quiet)
+    _print_issues(m, quiet, checked)
     _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
-    for line in scan_notes(m.attrs.get("scan", {})):
+    for line in scan_notes(read_sidecar(out / "manifest.csv")["stages"]["prepare"].get("scan", {})):
         click.echo(line, err=True)
-    split = m.attrs["split"]
-    return _print_split_notes(m, split, quiet, ratios=ratios, folds=folds, given=split["given"])
+    chosen = chosen or {}
+    keep = chosen.get("keep_from")
+    old = _read(keep) if keep is not None else None
+    return _print_split_notes(m, old, quiet, ratios=chosen.get("ratios"), folds=chosen.get("folds"),
+                              resplit=chosen.get("resplit", False))
 
 
 @main.command()
@@ -511,4 +495,4 @@ def demo(folder, seed, jobs, force, quiet):
     _say(quiet, f"generated {photos}: {planted_summary(photos)}")
     m, summary = run(photos, folder / "out", group_pattern=GROUP_PATTERN, seed=seed,
                      jobs=jobs, force=force, progress=_progress(quiet))
-    _print_outcome(m, summary, folder / "out", quiet)
+    _print_outcome(m, summary, folder / "out", quiet, {})

@@ -16,6 +16,7 @@ from __future__ import annotations
 from . import codes
 from .defaults import MAX_DISTANCE
 from .errors import ParameterError
+from .validation import check_manifest
 from .hashing import HASH_COLUMNS, INNER_COLUMN, MIRROR_COLUMN
 
 DEFAULT_MAX_DISTANCE = MAX_DISTANCE
@@ -82,11 +83,7 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     import numpy as np
     import pandas as pd
 
-    if not isinstance(manifest, pd.DataFrame):
-        raise TypeError(f"manifest must be a pandas DataFrame, got {type(manifest).__name__}")
-    missing = [c for c in ("path", "sha256") if c not in manifest.columns]
-    if missing:
-        raise ParameterError(f"manifest lacks column(s) {', '.join(missing)}")
+    check_manifest(manifest, ["path", "sha256"], hint="make it with labelprep scan")
     if isinstance(max_distance, bool) or not isinstance(max_distance, (int, np.integer)):
         raise TypeError(f"max_distance must be an int, got {type(max_distance).__name__}")
     if not 0 <= max_distance <= 64:

@@ -8,7 +8,7 @@ SEED = 0
 # 3:1 sits above every usual camera and screen shape (4:3, 3:2, 16:9, 21:9 = 2.33; from memory),
 # so only strips, banners and panoramas are flagged
 MAX_ASPECT = 3.0
-# luminance std (0-255) on a 64x64 thumbnail: flat frames with sensor noise measure under 1, the
+# luminance std (0-255) on the 32x32 hash thumbnail (hashing.py): flat frames with sensor noise measure under 1, the
 # lowest photo bundled with scikit-image (microaneurysms.png) 9.8; tests/test_checks.py pins both
 MIN_SPREAD = 2.0
 # seconds one file may take to read and decode before it is given up as "timeout": a budget-sized

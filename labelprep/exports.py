@@ -25,6 +25,7 @@ from pathlib import Path, PurePosixPath
 
 from . import sources
 from .errors import InputError, OutputExistsError, ParameterError
+from .validation import check_manifest
 
 MODES = ("hardlink", "symlink", "copy")
 CLASS_LIST = "classes.txt"
@@ -114,9 +115,7 @@ def export(manifest, dest, *, root=None, mode="hardlink", force=False, strip_met
         raise TypeError(f"dest must be a path (str or Path), got {type(dest).__name__}")
     manifest, root = _manifest_and_root(manifest, root)
     sources.check_root(root)
-    missing = [c for c in ("path", "label", "split", "sha256") if c not in manifest.columns]
-    if missing:
-        raise InputError(f"the manifest has no {', '.join(map(repr, missing))} column; run scan and split first")
+    check_manifest(manifest, ["path", "label", "split", "sha256"], hint="run scan and split first")
     dest = Path(dest)
 
     plan = plan_targets(manifest)

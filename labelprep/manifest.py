@@ -10,9 +10,11 @@ each column's meaning here and the stage that computes it by the ``stage`` field
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import json
 import os
+import secrets
 import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -235,7 +237,8 @@ def _csv_bytes(df) -> bytes:
     return text.encode("utf-8", errors="surrogateescape")
 
 
-def write(df, path, *, meta: dict | None = None, force: bool = False, partitions=None) -> Path:
+def write(df, path, *, meta: dict | None = None, force: bool = False, partitions=None,
+          new_sidecar: bool = False) -> Path:
     """Write ``df`` to ``path`` atomically, and its sidecar beside it.
 
     The :data:`CACHE_COLUMNS` go to the scan cache beside it (:func:`cache_path`), not into the
@@ -256,6 +259,10 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
         rows, written in parallel threads; readers such as ``dask.dataframe.read_parquet`` then
         take one part per task. When ``path`` already is such a folder, it stays one, with the
         same number of parts, unless ``partitions`` says otherwise.
+    new_sidecar : bool, default False
+        Start the sidecar afresh with ``meta`` instead of merging it into the old one: for a
+        manifest whose every row is new (a scan, a prepare), which no earlier stage's record or
+        seed describes any more.
 
     Returns
     -------
@@ -274,6 +281,22 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
     if partitions is not None:
         check_partitions(partitions, path)
     guard_output(path, force=force)
+    # the sidecar first: a manifest is known as labelprep's by its sidecar (guard_output), so no
+    # interrupt may leave a new manifest without one (a rerun would refuse to replace it); if the
+    # manifest then fails, the old sidecar is put back, so a failed write changes nothing
+    side = sidecar_path(path)
+    old_side = side.read_bytes() if side.is_file() else None
+    write_sidecar(path, meta or {}, merge=not new_sidecar)
+    try:
+        _write_rows(df, path, partitions)
+    except BaseException:
+        _put_back(side, old_side)
+        raise
+    return path
+
+
+def _write_rows(df, path: Path, partitions) -> None:
+    """The manifest's own file (or part files), then its scan cache."""
     cached = [c for c in CACHE_COLUMNS if c in df.columns]
     if partitions is not None:
         _write_parts(df, path, partitions)
@@ -294,8 +317,15 @@ def write(df, path, *, meta: dict | None = None, force: bool = False, partitions
         data = _csv_bytes(df[["path", "sha256", *cached]])
         with atomic_path(cache_path(path)) as tmp:
             Path(tmp).write_bytes(data)
-    write_sidecar(path, meta or {})
-    return path
+
+
+def _put_back(side: Path, old) -> None:
+    """Restore a sidecar's earlier bytes (``None``: there was none)."""
+    if old is None:
+        side.unlink(missing_ok=True)
+        return
+    with atomic_path(side) as tmp:
+        Path(tmp).write_bytes(old)
 
 
 def guard_output(path, *, force: bool) -> None:
@@ -433,6 +463,23 @@ def _swap_in(new: Path, path: Path) -> None:
         old.unlink()
 
 
+def _fresh_file(path: Path) -> str:
+    """Create a new empty file with a unique name beside ``path`` and return its name.
+
+    Created with mode 0666, which the kernel reduces by the process's umask, so outputs get the
+    usual permissions without reading the umask (``os.umask`` can only be read by setting it,
+    a race with a host program's threads); ``O_EXCL`` makes the name ours alone.
+    """
+    for _ in range(100):
+        tmp = str(path.parent / f".{path.name}.{secrets.token_hex(6)}.tmp")
+        try:
+            os.close(os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666))
+        except FileExistsError:
+            continue
+        return tmp
+    raise FileExistsError(errno.EEXIST, "no free temporary name", str(path.parent))
+
+
 @contextlib.contextmanager
 def atomic_path(path) -> Iterator[str]:
     """Yield a temporary name beside ``path``; on success rename it over ``path``, else remove it.
@@ -444,15 +491,10 @@ def atomic_path(path) -> Iterator[str]:
     if not path.parent.is_dir():
         raise InputError(f"cannot write {path}: folder {path.parent} does not exist")
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+        tmp = _fresh_file(path)
     except OSError as exc:
         raise InputError(f"cannot write {path}: {exc.strerror}") from exc
-    os.close(fd)
     try:
-        # mkstemp makes the file private (0600); outputs get the usual mode the umask allows
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)
         yield tmp
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
@@ -485,16 +527,17 @@ def write_text(path, text: str, *, force: bool = False, ledger: bool = True) -> 
     return path
 
 
-def write_sidecar(path, meta: dict) -> Path:
+def write_sidecar(path, meta: dict, *, merge: bool = True) -> Path:
     """Write the JSON sidecar of manifest ``path``, merging ``meta`` into what is there.
 
     Stages record their options under their own key (``meta["stages"][name]``), so a manifest
-    that went through scan, check and group keeps all three.
+    that went through scan, check and group keeps all three. With ``merge=False`` the old
+    sidecar is replaced, not merged into.
     """
     from . import __version__
 
     side = sidecar_path(path)
-    old = read_sidecar(path)
+    old = read_sidecar(path) if merge else {}
     stages = dict(old.get("stages", {}))
     stages.update(meta.get("stages", {}))
     merged = {**old, **meta, "stages": stages, "format": FORMAT_TAG, "tool": "labelprep",

@@ -94,7 +94,8 @@ class Option:
         return click.option(*names, self.name, **kwargs)
 
 
-_existing_file = click.Path(exists=True, file_okay=True, dir_okay=False, path_type=Path)
+# a manifest is a file, or a folder of part files (partitioned Parquet); manifest.read tells
+_existing_manifest = click.Path(exists=True, file_okay=True, dir_okay=True, path_type=Path)
 
 SPEC = (
     Option("layout", ("scan",), "auto", dict(
@@ -158,7 +159,7 @@ SPEC = (
     Option("folds", ("split",), None, dict(
         type=click.IntRange(min=2), help="Also write a fold column with K cross-validation folds.")),
     Option("keep_from", ("split",), None, dict(
-        type=_existing_file, metavar="OLD_MANIFEST",
+        type=_existing_manifest, metavar="OLD_MANIFEST",
         help="Keep every file already assigned in this manifest where it was; place only new files.")),
     Option("resplit", ("split",), False, dict(
         is_flag=True,

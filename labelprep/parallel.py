@@ -44,7 +44,8 @@ def resolve_jobs(jobs) -> int:
 _NOTHING = object()
 
 
-def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None, shared=_NOTHING):
+def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None, shared=_NOTHING,
+                isolated: bool = False):
     """Yield ``func(item)`` for each item, in input order, with bounded memory.
 
     Parameters
@@ -66,6 +67,10 @@ def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None, sh
         A large read-only argument common to every item: ``func(item, shared)`` is called
         instead of ``func(item)``. On a cluster it is sent to every worker once (scattered),
         not with every task.
+    isolated : bool, default False
+        Run even one job in a worker process rather than in this one: work that relies on the
+        worker's signal handling (the per-file time limit of :func:`labelprep.probe.probe`)
+        then gets it, and this process's signal state is never changed.
 
     Yields
     ------
@@ -88,7 +93,7 @@ def map_ordered(func, items, *, jobs=None, chunksize: int = 16, cluster=None, sh
         return
     if shared is not _NOTHING:
         func = functools.partial(_with_shared, func, shared)
-    if jobs == 1:
+    if jobs == 1 and not isolated:
         for item in items:
             yield func(item)
         return
@@ -180,7 +185,8 @@ def _worker_setup():
     """Workers ignore Ctrl-C (sent to the whole process group): the parent stops the pool and
     cancels queued work, so an interrupt ends cleanly instead of in one traceback per worker.
     SIGTERM gets its default back (a forked worker inherits the command line's handler), so a
-    pool that terminates its workers ends them at once.
+    pool that terminates its workers ends them at once. SIGALRM is the per-file time limit's
+    (:func:`labelprep.probe.expire`): the worker is labelprep's own, so its handler may be set.
 
     A worker also ends when its parent dies without stopping the pool (SIGKILL, the out-of-memory
     killer): it would otherwise wait forever on a queue whose other end it holds itself. Linux
@@ -193,6 +199,10 @@ def _worker_setup():
 
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if hasattr(signal, "SIGALRM"):
+        from .probe import expire
+
+        signal.signal(signal.SIGALRM, expire)
     if sys.platform.startswith("linux"):
         import ctypes
 

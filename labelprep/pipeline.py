@@ -26,9 +26,8 @@ def prepare(root, out, *, force=False, progress=None, **options):
     Dask scheduler address) decodes the files on that cluster's workers, as in
     :func:`~labelprep.scan`. Nothing in ``out`` is indexed, nor a label table stored inside a
     root. The sidecar records every option that shapes the result
-    (:func:`labelprep.options.record`). ``m.attrs`` holds ``scan`` (what the scan skipped, see
-    :func:`~labelprep.scan`) and ``split``: :func:`~labelprep.split_summary` (with what was kept
-    from ``keep_from`` or the given split) plus ``given``, true when the given split was kept.
+    (:func:`labelprep.options.record`) and what the scan did (``stages.prepare.scan``: what it
+    left out and skipped, empty folders).
 
     Returns
     -------
@@ -44,9 +43,9 @@ def prepare(root, out, *, force=False, progress=None, **options):
     from .checks import check
     from .clusters import group
     from .reports import report
-    from .scanner import journal_path, previous_manifest, scan
+    from .scanner import resuming, scan
     from .sources import describe, name_roots, roots_of
-    from .splits import given_assignment, split, split_summary
+    from .splits import split
 
     chosen = spec.resolve(options, *spec.STAGES)
     out = Path(out)
@@ -57,24 +56,18 @@ def prepare(root, out, *, force=False, progress=None, **options):
     target = out / MANIFEST_NAME
     for path in (target, out / REPORT_JSON, out / REPORT_HTML):  # refuse before the work, not after it
         manifest.guard_output(path, force=force)
-    previous = previous_manifest(target, root=root, max_pixels=chosen["max_pixels"])
-    journal = journal_path(target)
     keep_from = chosen["keep_from"]
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
 
-    m = scan(root, previous=previous, journal=journal, progress=progress, exclude=[out],
-             **spec.for_stage("scan", chosen))
-    scan_facts = m.attrs.get("scan", {})
-    m = check(m, **spec.for_stage("check", chosen))
-    m = group(m, progress=progress, **spec.for_stage("group", chosen))
-    m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
-    meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts)}
-    manifest.write(m, target, meta=meta, force=True)
-    journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
+    with resuming(target, root=root, max_pixels=chosen["max_pixels"]) as (previous, journal):
+        m, scan_facts = scan(root, previous=previous, journal=journal, progress=progress, return_facts=True,
+                             exclude=[out], **spec.for_stage("scan", chosen))
+        m = check(m, **spec.for_stage("check", chosen))
+        m = group(m, progress=progress, **spec.for_stage("group", chosen))
+        m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
+        meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts)}
+        manifest.write(m, target, meta=meta, force=True, new_sidecar=True)
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
                      meta=manifest.read_sidecar(target), force=force)
-    given = given_assignment(m) if keep_from is None and not chosen["resplit"] else None
-    kept = split_summary(m, keep_from=keep_from if given is None else given)
-    m.attrs.update(scan=scan_facts, split={**kept, "given": given is not None})
     return m, summary

@@ -62,29 +62,31 @@ class _OutOfTime(BaseException):
     clauses cannot turn it into an ordinary decoding fault."""
 
 
+def expire(signum, frame):
+    """The SIGALRM handler of a labelprep worker process (installed by its pool's initializer)."""
+    raise _OutOfTime
+
+
 @contextlib.contextmanager
 def _deadline(seconds):
-    """Interrupt the block with :class:`_OutOfTime` after ``seconds`` (SIGALRM, POSIX main thread).
+    """Interrupt the block with :class:`_OutOfTime` after ``seconds``.
 
-    Elsewhere (a thread, Windows) the block runs without a limit: signals reach only the main
-    thread. Pool workers run their tasks in their main thread, so scans get the limit.
+    The alarm is SIGALRM, a process-wide resource, so it is armed only in a process whose
+    handler is :func:`expire`: a worker of :func:`labelprep.parallel.map_ordered` (which scans
+    use even for one job). In any other process (a host program calling :func:`probe`), or off
+    the main thread, the block runs without a limit and no signal state is touched.
     """
     usable = (seconds is not None and hasattr(signal, "setitimer")
-              and threading.current_thread() is threading.main_thread())
+              and threading.current_thread() is threading.main_thread()
+              and signal.getsignal(signal.SIGALRM) is expire)
     if not usable:
         yield
         return
-
-    def expire(signum, frame):
-        raise _OutOfTime
-
-    previous = signal.signal(signal.SIGALRM, expire)
     signal.setitimer(signal.ITIMER_REAL, seconds)
     try:
         yield
     finally:
         signal.setitimer(signal.ITIMER_REAL, 0)
-        signal.signal(signal.SIGALRM, previous)
 
 
 def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
@@ -102,7 +104,9 @@ def probe(path, *, max_pixels: int = DEFAULT_MAX_PIXELS,
         guard) and gets ``fault="pixel-limit"``.
     time_limit : float or None
         Seconds the file may take; a file still being read or decoded then gets
-        ``fault="timeout"``. None: no limit. Enforced with SIGALRM in the main thread only.
+        ``fault="timeout"``. None: no limit. Enforced (by SIGALRM) only in a labelprep worker
+        process, so that a host program's signal handling is never touched; scans always probe
+        in one (see :func:`labelprep.parallel.map_ordered`'s ``isolated``).
 
     Returns
     -------

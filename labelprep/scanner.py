@@ -171,8 +171,12 @@ def _escaped(text: str) -> str:
 
 def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_by_source: bool = False,
          include_hidden: bool = False, jobs=None, max_pixels: int = DEFAULT_MAX_PIXELS,
-         previous=None, journal=None, progress=None, cluster=None, exclude=()):
-    """Index every file below ``root`` into a new manifest.
+         previous=None, journal=None, progress=None, cluster=None, exclude=(),
+         return_facts: bool = False):
+    """Index every file below ``root`` into a new manifest, in memory.
+
+    :func:`scan_to` scans into a manifest file instead, reusing that file's rows on a rescan and
+    resuming an interrupted scan.
 
     Parameters
     ----------
@@ -214,14 +218,16 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     exclude : sequence of path-like
         Files and folders to leave out where they lie inside a root: the caller's outputs (an
         output folder, a manifest and its companions, see :func:`own_files`). The journal and
-        the label tables are always left out. What was left out is listed in ``attrs``.
+        the label tables are always left out.
+    return_facts : bool, default False
+        Also return what the scan did, as scikit-learn's loaders return ``(X, y)`` on request.
 
     Returns
     -------
-    DataFrame
-        One row per file, sorted by path. ``df.attrs["scan"]`` holds counts (probed, reused,
-        skipped junk, links, layout), ``excluded`` (paths left out as labelprep's own files) and
-        ``empty_folders`` (folders with nothing indexed below them).
+    DataFrame, or (DataFrame, dict) with ``return_facts``
+        One row per file, sorted by path; the dict holds counts (probed, reused, skipped junk,
+        links, misnamed, refused), the layout of each root, ``excluded`` (paths left out as
+        labelprep's own files) and ``empty_folders`` (folders with nothing indexed below them).
 
     Examples
     --------
@@ -275,11 +281,14 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     reused, todo = _split_unchanged(where, files, known, resolve(progress))
 
     pieces = [reused]
-    if todo and cluster is None and resolve_jobs(jobs) > 1:
+    if todo and cluster is None:
         preload()  # before the pool forks, so that workers do not each import Pillow and scipy
     work = functools.partial(sources.probe_unit, max_pixels=max_pixels, probe=probe)
     tasks = sources.tasks(where(rel) for rel in todo)
-    results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(todo), jobs), cluster=cluster)
+    # isolated: even one job probes in a worker process, where the per-file time limit may arm
+    # SIGALRM without touching the caller's signal handling
+    results = map_ordered(work, tasks, jobs=jobs, chunksize=_chunksize(len(todo), jobs), cluster=cluster,
+                          isolated=bool(todo))
     facts_each = (facts for task_facts in results for facts in task_facts)
     # zip stops on ``todo`` and leaves ``results`` suspended: close it here, not when it is
     # collected, so that a signal arriving while the pool shuts down is raised, not swallowed
@@ -313,11 +322,11 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     df["issues"] = ""
     df = manifest.coerce(df).sort_values("path", kind="stable").reset_index(drop=True)
     chosen = layouts[named[0][0]] if len(named) == 1 else layouts
-    df.attrs["scan"] = {"layout": chosen, "probed": len(todo), "reused": len(files) - len(todo),
+    facts = {"layout": chosen, "probed": len(todo), "reused": len(files) - len(todo),
                         "links": len(links), "misnamed": len(misnamed), "refused": len(refused),
                         "skipped_junk": len(skipped), "skipped_examples": skipped[:5],
                         "excluded": excluded, "empty_folders": empty}
-    return df
+    return (df, facts) if return_facts else df
 
 
 def own_files(manifest_path) -> list:
@@ -370,6 +379,78 @@ def _chunksize(n: int, jobs) -> int:
     few enough that every worker gets 32 tasks or more: at the end of a scan one worker may still
     be busy with its last task while the others idle, so a task must be a small share of the run."""
     return max(1, min(16, n // (32 * resolve_jobs(jobs))))
+
+
+def scan_to(root, output, *, partitions=None, force: bool = False, progress=None, **options):
+    """Scan ``root`` into the manifest file ``output``: what ``labelprep scan`` does.
+
+    A manifest already at ``output`` (of the same roots, budget and version) is the rescan cache:
+    only new and changed files are decoded. The journal beside ``output`` makes an interrupted
+    scan resume where it stopped; it is removed once the manifest is written. The sidecar
+    records the roots, the options and what the scan did. ``output`` and the files beside it
+    (:func:`own_files`) are not indexed when they lie inside a root.
+
+    Parameters
+    ----------
+    root : path-like or list of path-like
+        As for :func:`scan`.
+    output : path-like
+        The manifest to write (``.csv``, or ``.parquet`` with pyarrow).
+    partitions : int, optional
+        Write ``output`` (a ``.parquet`` name) as a folder of this many part files.
+    force : bool, default False
+        Replace an ``output`` that labelprep did not write.
+    progress : callable, optional
+        As for :func:`scan`.
+    **options
+        The scan options of :data:`labelprep.options.SPEC` (``layout``, ``labels``, ``jobs``,
+        ...); one left out takes its default, an unknown one raises ``TypeError``.
+
+    Returns
+    -------
+    (DataFrame, dict)
+        The manifest written and what the scan did (see :func:`scan`'s ``return_facts``).
+
+    Examples
+    --------
+    >>> m, facts = scan_to("photos/", "manifest.csv", jobs=1)   # doctest: +SKIP
+    >>> m, facts = scan_to("photos/", "manifest.csv", jobs=1)   # doctest: +SKIP
+    >>> facts["probed"], facts["reused"]                        # doctest: +SKIP
+    (0, 1204)
+    """
+    from . import manifest, options as spec
+
+    chosen = spec.resolve(options, "scan")
+    manifest.guard_output(output, force=force)
+    if partitions is not None:
+        manifest.check_partitions(partitions, output)
+    with resuming(output, root=root, max_pixels=chosen["max_pixels"]) as (previous, journal):
+        df, facts = scan(root, previous=previous, journal=journal, progress=progress, return_facts=True,
+                         exclude=own_files(output), **spec.for_stage("scan", chosen))
+        meta = {**sources.describe(sources.name_roots(root)),
+                **spec.sidecar("scan", spec.record(chosen, "scan"), result=facts)}
+        manifest.write(df, output, meta=meta, force=True, partitions=partitions, new_sidecar=True)
+    return df, facts
+
+
+@contextlib.contextmanager
+def resuming(output, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):
+    """The rescan cache and the journal of a scan whose manifest goes to ``output``.
+
+    Yields ``(previous, journal)`` for :func:`scan`: the reusable earlier manifest at ``output``
+    (see :func:`previous_manifest`) and the journal path. When the block ends normally (the
+    manifest is written by then) the journal is removed; when it raises (an interrupt, a full
+    disk) the journal stays, so that the next scan resumes from it.
+
+    Examples
+    --------
+    >>> with resuming("out/manifest.csv", root="photos/") as (previous, journal):  # doctest: +SKIP
+    ...     m = scan("photos/", previous=previous, journal=journal)
+    ...     write(m, "out/manifest.csv")
+    """
+    journal = journal_path(output)
+    yield previous_manifest(output, root=root, max_pixels=max_pixels), journal
+    journal.unlink(missing_ok=True)  # the manifest now holds every row the journal held
 
 
 def previous_manifest(path, *, root, max_pixels: int = DEFAULT_MAX_PIXELS):

@@ -27,7 +27,8 @@ import numpy as np
 
 from .defaults import SPLIT_TOLERANCE
 from .errors import ParameterError
-from .splits import SPLIT_NAMES, _check_folds, _check_manifest, _check_ratios, _components, _link_keys
+from .splits import SPLIT_NAMES, _check_folds, _check_ratios, _components, _link_keys
+from .validation import check_manifest
 
 SIZE_TOLERANCE = SPLIT_TOLERANCE
 """Largest ``|share of rows in a split - its ratio|`` that counts as reaching the ratio (the
@@ -86,7 +87,7 @@ def diagnose_split(manifest, *, ratios=(0.8, 0.1, 0.1), folds=None, tolerance=SI
     """
     import pandas as pd
 
-    _check_manifest(manifest, "manifest", ("path", "label", "split"))
+    check_manifest(manifest, ("path", "label", "split"), hint="run labelprep split first")
     shares = _check_ratios(ratios)
     folds = _check_folds(folds)
     if isinstance(tolerance, bool) or not isinstance(tolerance, (int, float, np.floating)):

@@ -55,6 +55,7 @@ import numpy as np
 
 from . import codes
 from .errors import ParameterError
+from .validation import check_manifest
 from .progress import resolve
 
 SPLIT_NAMES = ("train", "val", "test")
@@ -148,12 +149,12 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     """
     import pandas as pd
 
-    _check_manifest(manifest, "manifest", ("path", "label"))
+    check_manifest(manifest, ("path", "label"))
     shares = _check_ratios(ratios)
     seed = _check_seed(seed)
     folds = _check_folds(folds)
     if keep_from is not None:
-        _check_manifest(keep_from, "keep_from", ("path", "split"))
+        check_manifest(keep_from, ("path", "split"), name="keep_from")
     elif not resplit:
         keep_from = given_assignment(manifest)
 
@@ -259,7 +260,7 @@ def split_summary(manifest, *, keep_from=None) -> dict:
     >>> s["kept"], s["placed"], s["moved"]
     (1, 1, 0)
     """
-    _check_manifest(manifest, "manifest", ("path", "label", "split"))
+    check_manifest(manifest, ("path", "label", "split"), hint="run labelprep split first")
     split_col = manifest["split"].fillna("").astype(str)
     labels = manifest["label"].fillna("").astype(str)
     assigned = split_col != ""
@@ -287,7 +288,7 @@ def split_summary(manifest, *, keep_from=None) -> dict:
     if folds:
         summary["units_per_class"], summary["fold_units"] = _fold_units(manifest, labels)
     if keep_from is not None:
-        _check_manifest(keep_from, "keep_from", ("path", "split"))
+        check_manifest(keep_from, ("path", "split"), name="keep_from")
         old, _ = _old_assignment(manifest, keep_from)
         now = split_col.to_numpy(dtype=object)
         found = old != ""
@@ -340,17 +341,6 @@ def given_assignment(manifest):
 
 
 # ---------------------------------------------------------------- parameters
-
-def _check_manifest(df, name, needed):
-    import pandas as pd
-
-    if not isinstance(df, pd.DataFrame):
-        raise TypeError(f"{name} must be a pandas DataFrame, got {type(df).__name__}")
-    missing = [c for c in needed if c not in df.columns]
-    if missing:
-        raise ParameterError(f"{name} has no {', '.join(map(repr, missing))} column "
-                             f"(columns: {', '.join(map(str, df.columns))})")
-
 
 def _check_ratios(ratios):
     """Ratios as three shares (train, val, test); two-way ratios get a val share of 0."""

@@ -16,6 +16,17 @@ def runner():
     return CliRunner()
 
 
+def assert_handled(result, exit_code: int) -> None:
+    """A command ended on purpose with ``exit_code``: no exception escaped it.
+
+    Under CliRunner an escaped exception never reaches the output (``result.output`` stays free
+    of any traceback); it is kept in ``result.exception`` with exit code 1, so that is where to look.
+    """
+    escaped = result.exception if not isinstance(result.exception, SystemExit) else None
+    assert escaped is None, f"{type(escaped).__name__}: {escaped}"
+    assert result.exit_code == exit_code, result.output
+
+
 def textured(size=(96, 64), seed=0, mode="RGB") -> Image.Image:
     """A random smooth texture: distinct seeds give perceptually distinct images."""
     rng = np.random.default_rng(seed)

@@ -9,9 +9,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from labelprep.audits import audit, render
+from labelprep.audits import audit, audit_path, leak_gate, render
 from labelprep.cli import main
-from labelprep.errors import ParameterError
+from labelprep.errors import GateFailed, InputError, ParameterError
 from labelprep.manifest import write
 from labelprep.splits import split
 
@@ -146,7 +146,7 @@ class TestBalanceAndColumns:
     @pytest.mark.parametrize("kwargs, error, match", [
         ({"max_distance": 65}, ParameterError, "0 to 64"),
         ({"max_distance": 2.5}, TypeError, "int"),
-        ({"split_column": "nope"}, ParameterError, "'nope'"),
+        ({"split_column": "nope"}, InputError, "'nope'"),
         ({"split_column": 3}, TypeError, "str"),
     ])
     def test_bad_options(self, kwargs, error, match):
@@ -204,6 +204,30 @@ class TestCommand:
         assert saved["split_column"] == "given_split"
         assert [(p["path_a"], p["path_b"], p["exact"]) for p in saved["near_leaks"]] == [
             ("test/cat/a_copy.jpg", "train/cat/a.jpg", True)]
+
+
+class TestLibraryEntry:
+    """What the command does, through the library: a folder or a manifest, and the gate."""
+
+    def test_folder_is_scanned_in_memory_and_gated(self, tmp_path, write_image):
+        root = tmp_path / "data"
+        write_image(root / "train" / "cat" / "a.jpg", seed=1)
+        (root / "test" / "cat").mkdir(parents=True)
+        (root / "test" / "cat" / "b.jpg").write_bytes((root / "train" / "cat" / "a.jpg").read_bytes())
+        before = sorted(p.name for p in tmp_path.rglob("*"))
+        result = audit_path(root, jobs=1)
+        assert sorted(p.name for p in tmp_path.rglob("*")) == before  # nothing written beside it
+        assert [(p["path_a"], p["path_b"]) for p in result["near_leaks"]] == [("test/cat/b.jpg", "train/cat/a.jpg")]
+        with pytest.raises(GateFailed, match="1 near-duplicate pairs and 0 groups"):
+            leak_gate(result, "leaks")
+        leak_gate(result, "never")
+        with pytest.raises(ParameterError, match="fail_on='sometimes'"):
+            leak_gate(result, "sometimes")
+
+    def test_manifest_file_is_read(self, tmp_path):
+        m = random_manifest()
+        write(m, tmp_path / "m.csv")
+        assert audit_path(tmp_path / "m.csv", max_distance=6) == audit(m, max_distance=6)
 
 
 class TestAgreesWithGroup:

@@ -20,7 +20,7 @@ from labelprep.balance import (
     effective_number,
     normalised_entropy,
 )
-from labelprep.errors import ParameterError
+from labelprep.errors import InputError, ParameterError
 
 
 def _manifest(rows):
@@ -149,7 +149,7 @@ class TestBySplit:
         ({"beta": "0.9"}, TypeError, "beta must be a number"),
         ({"min_count": -1}, ParameterError, "min_count=-1"),
         ({"min_count": 2.5}, TypeError, "min_count must be an int"),
-        ({"split_column": "fold_name"}, ParameterError, "no 'fold_name' column"),
+        ({"split_column": "fold_name"}, InputError, "no column 'fold_name'"),
         ({"split_column": 3}, TypeError, "split_column"),
     ])
     def test_bad_parameters(self, kwargs, error, match):

@@ -166,7 +166,7 @@ class TestLimits:
 
     def test_manifest_without_scan_facts(self):
         """A table lacking the scan's fact columns is refused with the missing names."""
-        with pytest.raises(InputError, match="lacks column"):
+        with pytest.raises(InputError, match="has no columns .*'spread'"):
             check(pd.DataFrame({"path": ["a.jpg"], "label": ["a"]}))
 
     def test_unknown_code_for_reason(self, checked):

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import subprocess
 import sys
 
@@ -12,6 +11,7 @@ import pytest
 import labelprep
 from labelprep import manifest
 from labelprep.cli import main
+from conftest import assert_handled
 
 
 def test_help_imports_nothing_heavy():
@@ -44,11 +44,22 @@ def test_python_dash_m_works():
 
 
 def test_public_api_matches_all():
-    """Every name in __all__ resolves, and the stage functions are there."""
-    for name in labelprep.__all__:
-        assert getattr(labelprep, name) is not None
-    for name in ("scan", "check", "group", "split", "report", "export", "prepare", "audit"):
-        assert callable(getattr(labelprep, name))
+    """Each name in __all__ is the object its module defines under that name (a wrong entry in
+    the lazy table would give another function, or raise), and no other public name is offered."""
+    import importlib
+
+    from labelprep import errors
+
+    for name in set(labelprep.__all__) - {"__version__"}:
+        value = getattr(labelprep, name)
+        module = importlib.import_module(value.__module__)
+        assert getattr(module, value.__name__) is value
+        assert value.__name__ == name or name in ("read_manifest", "write_manifest")
+    assert labelprep.read_manifest is manifest.read and labelprep.write_manifest is manifest.write
+    assert issubclass(labelprep.GateFailed, errors.LabelprepError)
+    assert sorted(dir(labelprep)) == sorted(labelprep.__all__)
+    with pytest.raises(AttributeError, match="no attribute 'nope'"):
+        labelprep.nope
 
 
 class TestScanCommand:
@@ -136,5 +147,54 @@ class TestDemoCommand:
         photos.mkdir()
         (photos / "mine.jpg").write_bytes(b"a user's file")
         result = runner.invoke(main, ["demo", str(tmp_path), "-q"])
-        assert result.exit_code != 0 and "--force" in result.output and "Traceback" not in result.output
+        assert_handled(result, 2)
+        assert "--force" in result.output
         assert (photos / "mine.jpg").read_bytes() == b"a user's file"
+
+
+@pytest.mark.parametrize("stage", ["check", "group", "split", "report", "audit", "by_split"])
+def test_every_stage_refuses_a_non_manifest_with_its_own_errors(stage):
+    """A list where a manifest goes is a TypeError naming the parameter; a manifest without the
+    columns a stage reads is an InputError naming them, the same in every stage (never an
+    AttributeError from pandas, never a ParameterError in one stage and an InputError in another)."""
+    from labelprep.balance import by_split
+    from labelprep.errors import InputError
+
+    func = {"check": labelprep.check, "group": labelprep.group, "split": labelprep.split,
+            "report": labelprep.report, "audit": labelprep.audit, "by_split": by_split}[stage]
+    with pytest.raises(TypeError, match="manifest must be a pandas DataFrame, got list"):
+        func([{"path": "a.png"}])
+    with pytest.raises(InputError, match="has no column"):
+        func(pd.DataFrame({"other": ["a.png"]}))
+
+
+class TestGatesAndSplitCommand:
+    def test_prepare_fail_on_sets_the_exit_status(self, runner, class_tree, tmp_path):
+        """A truncated file is an error: --fail-on error exits 1 (a failed gate, after writing
+        everything), --fail-on warning too, --fail-on never 0; the outputs are the same."""
+        (class_tree / "cat" / "cut.jpg").write_bytes((class_tree / "cat" / "g0_cat_0.jpg").read_bytes()[:600])
+        outputs = {}
+        for level, status in (("never", 0), ("error", 1), ("warning", 1)):
+            out = tmp_path / level
+            result = runner.invoke(main, ["prepare", str(class_tree), "--out", str(out), "--jobs", "1",
+                                          "--fail-on", level, "-q"])
+            assert_handled(result, status)
+            if status:
+                assert "--fail-on " + level in result.output and "truncated" in result.output
+            outputs[level] = (out / "manifest.csv").read_bytes()
+        assert len(set(outputs.values())) == 1
+
+    def test_split_command_writes_the_split_and_prints_its_sizes(self, runner, class_tree, tmp_path):
+        out = tmp_path / "m.csv"
+        assert runner.invoke(main, ["scan", str(class_tree), "-o", str(out), "--jobs", "1", "-q"]).exit_code == 0
+        result = runner.invoke(main, ["split", str(out), "--ratios", "0.5,0.25,0.25", "--seed", "3"])
+        assert_handled(result, 0)
+        m = manifest.read(out)
+        library = labelprep.split(manifest.read(out), ratios=(0.5, 0.25, 0.25), seed=3)
+        assert m["split"].tolist() == library["split"].tolist()
+        counts = m["split"].value_counts()
+        assert f"train: {counts['train']}" in result.output and f"test: {counts['test']}" in result.output
+        assert manifest.read_sidecar(out)["stages"]["split"]["options"]["seed"] == 3
+        bad = runner.invoke(main, ["split", str(out), "--ratios", "0.5,0.6"])
+        assert_handled(bad, 2)
+        assert "ratios" in bad.output

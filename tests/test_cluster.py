@@ -220,3 +220,17 @@ def test_scan_cli_refuses_partitions_of_a_csv_before_scanning(class_tree, tmp_pa
                                   "--partitions", "2", "-q"])
     assert result.exit_code == 2 and "needs a .parquet manifest name" in result.output
     assert not (tmp_path / "m.csv.scan-journal").exists()  # refused before any file was read
+
+
+def test_keep_from_reads_a_partitioned_manifest(runner, class_tree, tmp_path):
+    """--keep-from takes any manifest a command reads, a folder of part files too (README)."""
+    from labelprep.splits import split
+
+    old = tmp_path / "old.parquet"
+    first = split(scan(class_tree, jobs=1))
+    manifest.write(first, old, partitions=2)
+    result = runner.invoke(main, ["prepare", str(class_tree), "--out", str(tmp_path / "out"), "--jobs", "1",
+                                  "--keep-from", str(old), "-q"])
+    assert result.exit_code == 0, result.output
+    again = manifest.read(tmp_path / "out" / "manifest.csv").set_index("path")["split"]
+    assert again.reindex(first["path"]).tolist() == first["split"].tolist()

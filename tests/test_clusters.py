@@ -9,7 +9,7 @@ import skimage.data
 from PIL import Image, ImageDraw
 
 from labelprep.clusters import group
-from labelprep.errors import ParameterError
+from labelprep.errors import InputError, ParameterError
 from labelprep.hashing import fingerprint
 
 
@@ -229,7 +229,7 @@ class TestParameters:
             group(m, max_distance="8")
         with pytest.raises(TypeError, match="keep_conflicts must be True or False"):
             group(m, keep_conflicts=1)
-        with pytest.raises(ParameterError, match="sha256"):
+        with pytest.raises(InputError, match="sha256"):
             group(pd.DataFrame({"path": ["a"]}))
         with pytest.raises(TypeError, match="DataFrame"):
             group([1, 2])

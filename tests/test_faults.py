@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 from _tally import tally
-from conftest import encode, textured
+from conftest import assert_handled, encode, textured
 
 from labelprep import manifest
 from labelprep.cli import main
@@ -241,8 +241,6 @@ def test_no_space_at_any_write_keeps_the_manifest_whole(runner, tree, tmp_path, 
 
 def test_unwritable_output_folder(runner, tree, tmp_path, monkeypatch):
     """As root every folder is writable; refuse the temporary file as a read-only folder would."""
-    import tempfile
-
     out = tmp_path / "m.csv"
     assert runner.invoke(main, ["scan", str(tree), "-o", str(out), "-q"]).exit_code == 0
     old = out.read_bytes()
@@ -250,7 +248,7 @@ def test_unwritable_output_folder(runner, tree, tmp_path, monkeypatch):
     def refuse(*args, **kwargs):
         raise PermissionError(errno.EACCES, "Permission denied")
 
-    monkeypatch.setattr(tempfile, "mkstemp", refuse)
+    monkeypatch.setattr(manifest, "_fresh_file", refuse)
     _rescan_fails_with(runner, tree, out, "Permission denied")
     assert out.read_bytes() == old
 
@@ -260,14 +258,14 @@ def _rescan_fails_with(runner, tree, out, message: str) -> None:
     os.utime(next(tree.rglob("*.png")))
     result = runner.invoke(main, ["scan", str(tree), "-o", str(out), "-q"])
     tally(faults=1)
-    assert result.exit_code == 2 and message in result.output
-    assert "Traceback" not in result.output
+    assert_handled(result, 2)
+    assert message in result.output
 
 
 def test_output_in_a_missing_folder(runner, tree, tmp_path):
     result = runner.invoke(main, ["scan", str(tree), "-o", str(tmp_path / "no" / "m.csv"), "-q"])
-    assert result.exit_code == 2 and "No such file or directory" in result.output
-    assert "Traceback" not in result.output
+    assert_handled(result, 2)
+    assert "No such file or directory" in result.output
 
 
 def test_disk_full_during_export_leaves_no_partial_file(runner, tree, tmp_path, monkeypatch):
@@ -287,8 +285,8 @@ def test_disk_full_during_export_leaves_no_partial_file(runner, tree, tmp_path, 
     result = runner.invoke(main, ["export", str(tmp_path / "out" / "manifest.csv"), str(dest),
                                   "--mode", "copy", "-q"])
     tally(faults=1)
-    assert result.exit_code == 2 and "No space left on device" in result.output
-    assert "Traceback" not in result.output
+    assert_handled(result, 2)
+    assert "No space left on device" in result.output
     assert [p for p in dest.rglob("*") if p.name.endswith(".part")] == []
     placed = [p for p in dest.rglob("*") if p.is_file()]
     assert len(placed) == 3  # the files finished before the fault, each whole

@@ -3,6 +3,7 @@ every result either a clean row or a row that the check stage marks with an erro
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import signal
 import time
@@ -14,8 +15,9 @@ from conftest import encode, textured
 from hypothesis import HealthCheck, given, settings, strategies as st
 from PIL import Image
 
-from labelprep import codes, manifest
+from labelprep import codes, manifest, scanner
 from labelprep.checks import check
+from labelprep.parallel import map_ordered
 from labelprep.probe import blank_facts, probe
 
 # every fault the probe may report; each has an error code in the check stage
@@ -144,26 +146,47 @@ def big_png(tmp_path_factory):
     return path
 
 
+def _probe_in_a_worker(path, time_limit):
+    """probe() as a scan runs it: in a labelprep worker process, where the time limit applies."""
+    work = functools.partial(probe, time_limit=time_limit)
+    return next(map_ordered(work, [path], jobs=1, isolated=True))
+
+
 class TestTimeLimit:
     def test_slow_decode_becomes_a_timeout_row_with_its_code(self, big_png):
         started = time.monotonic()
-        facts = probe(big_png, time_limit=0.02)
-        assert time.monotonic() - started < 1.0
+        facts = _probe_in_a_worker(big_png, 0.02)
+        assert time.monotonic() - started < 5.0  # the full decode takes longer; a worker's start-up less
         assert facts["fault"] == "timeout" and "0.02 s" in facts["fault_detail"]
         row = manifest.coerce(pd.DataFrame([{"path": "big.png", "label": "x", **facts}]))
         assert codes.parse(check(row)["issues"][0]) == ["timed-out"]
         assert codes.CODES["timed-out"].severity == codes.ERROR
         tally(faults=1)
 
-    def test_alarm_handler_is_restored(self, big_png):
+    def test_a_scan_with_one_job_keeps_the_limit(self, big_png, monkeypatch):
+        """One job still probes in a worker, where the limit applies, and this process's SIGALRM
+        handler stays the default one."""
+        monkeypatch.setattr(scanner, "probe", functools.partial(probe, time_limit=0.02))
+        before = signal.getsignal(signal.SIGALRM)
+        df = scanner.scan(big_png.parent, jobs=1, layout="folders")
+        assert df.loc[df["path"] == "big.png", "fault"].item() == "timeout"
+        assert signal.getsignal(signal.SIGALRM) is before
+
+    def test_the_callers_signal_state_is_left_alone(self, big_png):
+        """In the caller's own process the probe arms no timer and swaps no handler: SIGALRM is
+        the host program's (a limit there would need it)."""
         def mine(signum, frame):
             raise AssertionError("the caller's handler must not fire")
 
         previous = signal.signal(signal.SIGALRM, mine)
         try:
-            probe(big_png, time_limit=0.02)
-            assert signal.getsignal(signal.SIGALRM) is mine
-            assert signal.getitimer(signal.ITIMER_REAL) == (0.0, 0.0)
+            seen = []
+            original = signal.setitimer
+            with pytest.MonkeyPatch.context() as mp:
+                mp.setattr(signal, "setitimer", lambda *a: seen.append(a) or original(*a))
+                facts = probe(big_png, time_limit=0.02)
+            assert facts["fault"] == "" and facts["width"] == 2000  # decoded to the end
+            assert seen == [] and signal.getsignal(signal.SIGALRM) is mine
         finally:
             signal.signal(signal.SIGALRM, previous)
 

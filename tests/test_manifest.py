@@ -108,3 +108,59 @@ class TestWriting:
         (tmp_path / "t.csv").write_text("a,b\n1,2\n")
         with pytest.raises(InputError, match="no 'path' column"):
             manifest.read(tmp_path / "t.csv")
+
+
+def test_outputs_get_the_umask_mode_without_the_umask_being_set(tmp_path):
+    """POSIX open(2): a file created with mode 0666 gets 0666 & ~umask. Run in a child with umask
+    027 so that the expected mode (0640) differs from the usual default; os.umask must never be
+    called (setting it, even for a moment, races with a host program's threads)."""
+    import subprocess
+    import sys
+
+    code = ("import os, sys\n"
+            "os.umask(0o027)\n"
+            "def refuse(*a): raise SystemExit('os.umask called')\n"
+            "os.umask = refuse\n"
+            "from labelprep import manifest\n"
+            "import pandas as pd\n"
+            "manifest.write_text(sys.argv[1] + '/r.txt', 'x')\n"
+            "manifest.write(pd.DataFrame({'path': ['a.png'], 'sha256': ['']}), sys.argv[1] + '/m.csv')\n")
+    run = subprocess.run([sys.executable, "-c", code, str(tmp_path)], capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr
+    for name in ("r.txt", "m.csv"):
+        assert (tmp_path / name).stat().st_mode & 0o777 == 0o640
+    assert [p.name for p in tmp_path.iterdir() if p.name.endswith(".tmp")] == []
+
+
+def test_an_interrupted_first_write_leaves_nothing_a_rerun_refuses(tmp_path, monkeypatch):
+    """Ctrl-C while the manifest is written: the rerun must not find a manifest without the
+    sidecar that marks it as labelprep's (it would refuse to replace it without --force)."""
+    target = tmp_path / "m.csv"
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    with monkeypatch.context() as mp:
+        mp.setattr(manifest, "write_sidecar", interrupted)
+        with pytest.raises(KeyboardInterrupt):
+            manifest.write(_sample(), target)
+    assert not target.exists() or manifest.sidecar_path(target).exists()
+    manifest.write(_sample(), target)
+    assert manifest.read(target)["path"].tolist() == _sample()["path"].tolist()
+
+
+def test_a_failed_rewrite_changes_nothing(tmp_path, monkeypatch):
+    """The sidecar goes first, so a manifest is never without one; if the manifest itself then
+    fails (a full disk, Ctrl-C), the old sidecar is put back: manifest and sidecar as they were."""
+    target = tmp_path / "m.csv"
+    manifest.write(_sample(), target, meta={"seed": 1})
+    before = {p.name: p.read_bytes() for p in tmp_path.iterdir()}
+
+    def interrupted(df):
+        raise KeyboardInterrupt
+
+    with monkeypatch.context() as mp:
+        mp.setattr(manifest, "to_csv_bytes", interrupted)
+        with pytest.raises(KeyboardInterrupt):
+            manifest.write(_sample().head(2), target, meta={"seed": 2}, new_sidecar=True)
+    assert {p.name: p.read_bytes() for p in tmp_path.iterdir()} == before

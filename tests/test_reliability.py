@@ -104,7 +104,8 @@ def _expected_paths(root) -> set:
 
 def _run(runner, *args):
     result = runner.invoke(main, [str(a) for a in args])
-    assert "Traceback" not in result.output, result.output
+    escaped = result.exception if not isinstance(result.exception, SystemExit) else None
+    assert escaped is None, f"{type(escaped).__name__}: {escaped}"
     return result
 
 
@@ -128,6 +129,23 @@ class TestSourcesUntouched:
         assert after == before
         if outside:
             assert snapshot(tmp_path / "outside") == outside
+
+
+class _RacingProbe:
+    """The probe, after doing what another program does between walk and read. At module level,
+    so that it pickles: a scan probes in a worker process even with one job."""
+
+    def __init__(self, gone, changed, new_bytes):
+        self.gone, self.changed, self.new_bytes = gone, changed, new_bytes
+
+    def __call__(self, path, **kwargs):
+        from labelprep.probe import probe
+
+        if path == self.gone:
+            os.unlink(path)
+        elif path == str(self.changed):
+            self.changed.write_bytes(self.new_bytes)
+        return probe(path, **kwargs)
 
 
 class TestHostileTree:
@@ -193,7 +211,8 @@ class TestHostileTree:
         real_open, real_scandir, real_listdir = builtins.open, os.scandir, os.listdir
 
         def refuse(path, real):
-            if os.fspath(path) in (denied_file, denied_dir):
+            # the scan's worker process (forked, so patched too) opens pipes by descriptor
+            if not isinstance(path, int) and os.fspath(path) in (denied_file, denied_dir):
                 raise PermissionError(13, "Permission denied", os.fspath(path))
             return real(path)
 
@@ -213,16 +232,7 @@ class TestHostileTree:
         gone = str(hostile_tree / "cls a" / "with space.png")
         changed = hostile_tree / "cls a" / "c,omma.png"
         new_bytes = _png(77)
-        real_probe = scanner_mod.probe
-
-        def racing_probe(path, **kwargs):  # what another program does between walk and read
-            if path == gone:
-                os.unlink(path)
-            elif path == str(changed):
-                changed.write_bytes(new_bytes)
-            return real_probe(path, **kwargs)
-
-        monkeypatch.setattr(scanner_mod, "probe", racing_probe)
+        monkeypatch.setattr(scanner_mod, "probe", _RacingProbe(gone, changed, new_bytes))
         m = check(scan(hostile_tree, jobs=1)).set_index("path")
         tally(faults=2)
         assert m.loc["cls a/with space.png", "fault_detail"] == "No such file or directory"

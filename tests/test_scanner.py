@@ -16,10 +16,12 @@ import pytest
 from PIL import Image, JpegImagePlugin
 
 from conftest import encode, textured
+import labelprep
 from labelprep import formats, manifest
 from labelprep.cli import main
+from labelprep.errors import OutputExistsError
 from labelprep.probe import HASH_SIDE, _reduce, draft_for_hashing, probe
-from labelprep.scanner import FACTS, journal_path, previous_manifest, scan
+from labelprep.scanner import FACTS, journal_path, previous_manifest, scan, scan_to
 
 
 def _stop_after(k):
@@ -252,7 +254,7 @@ class TestScan:
         assert sum(f == "" for f in faults.values()) == 12
 
     def test_counts(self, mixed_tree):
-        assert scan(mixed_tree, jobs=1).attrs["scan"]["probed"] == 14
+        assert scan(mixed_tree, jobs=1, return_facts=True)[1]["probed"] == 14
 
     @pytest.mark.parametrize("bad", [0, -5, 2.5, True])
     def test_bad_max_pixels(self, mixed_tree, bad):
@@ -263,15 +265,15 @@ class TestScan:
 class TestRescan:
     def test_unchanged_tree_is_not_decoded_again(self, mixed_tree):
         first = scan(mixed_tree, jobs=1)
-        again = scan(mixed_tree, jobs=1, previous=first)
-        assert again.attrs["scan"]["probed"] == 0 and again.attrs["scan"]["reused"] == 14
+        again, facts = scan(mixed_tree, jobs=1, previous=first, return_facts=True)
+        assert facts["probed"] == 0 and facts["reused"] == 14
         assert _csv(again) == _csv(first)
 
     def test_round_trip_through_the_written_manifest(self, mixed_tree, tmp_path):
         first = scan(mixed_tree, jobs=1)
         manifest.write(first, tmp_path / "m.csv")
-        again = scan(mixed_tree, jobs=1, previous=manifest.read(tmp_path / "m.csv"))
-        assert again.attrs["scan"]["probed"] == 0
+        again, facts = scan(mixed_tree, jobs=1, previous=manifest.read(tmp_path / "m.csv"), return_facts=True)
+        assert facts["probed"] == 0
         assert _csv(again) == _csv(first)
 
     def test_changed_mtime_or_size_is_probed_again(self, mixed_tree, write_image):
@@ -280,18 +282,18 @@ class TestRescan:
         os.utime(mixed_tree / "a/1.png", ns=(st.st_atime_ns, st.st_mtime_ns + 1_000_000_000))
         write_image(mixed_tree / "a/0.jpg", size=(600, 400), seed=99)  # new content, new size
         write_image(mixed_tree / "c/new.jpg", seed=7)
-        again = scan(mixed_tree, jobs=1, previous=first)
-        assert again.attrs["scan"]["probed"] == 3
+        again, facts = scan(mixed_tree, jobs=1, previous=first, return_facts=True)
+        assert facts["probed"] == 3
         assert _csv(again) == _csv(scan(mixed_tree, jobs=1))
 
     def test_manifest_missing_a_fact_column_is_not_trusted(self, mixed_tree):
         first = scan(mixed_tree, jobs=1).drop(columns=["spread"])
-        assert scan(mixed_tree, jobs=1, previous=first).attrs["scan"]["probed"] == 14
+        assert scan(mixed_tree, jobs=1, previous=first, return_facts=True)[1]["probed"] == 14
 
     def test_unreadable_rows_are_retried(self, mixed_tree):
         first = scan(mixed_tree, jobs=1)
         first.loc[first["path"] == "a/2.gif", "fault"] = "unreadable"
-        assert scan(mixed_tree, jobs=1, previous=first).attrs["scan"]["probed"] == 1
+        assert scan(mixed_tree, jobs=1, previous=first, return_facts=True)[1]["probed"] == 1
 
 
 class TestPreviousManifest:
@@ -326,8 +328,8 @@ class TestJournal:
             scan(mixed_tree, jobs=1, journal=log, progress=_stop_after(5))
         lines = log.read_text().splitlines()
         assert len(lines) == 1 + 5  # header + the five rows handed out before the interrupt
-        resumed = scan(mixed_tree, jobs=1, journal=log)
-        assert resumed.attrs["scan"]["probed"] == 14 - 5
+        resumed, facts = scan(mixed_tree, jobs=1, journal=log, return_facts=True)
+        assert facts["probed"] == 14 - 5
         assert _csv(resumed) == _csv(scan(mixed_tree, jobs=1))
         assert len(log.read_text().splitlines()) == 1 + 14
 
@@ -339,8 +341,8 @@ class TestJournal:
         whole = log.read_bytes()
         last = whole.rstrip(b"\n").rsplit(b"\n", 1)[1]
         log.write_bytes(whole + last[: len(last) // 2])  # a fifth row, torn
-        resumed = scan(mixed_tree, jobs=1, journal=log)
-        assert resumed.attrs["scan"]["probed"] == 14 - 4
+        resumed, facts = scan(mixed_tree, jobs=1, journal=log, return_facts=True)
+        assert facts["probed"] == 14 - 4
         rows = log.read_bytes().split(b"\n")
         parsed = [r for r in rows[1:] if r and _parses(r)]
         assert len(parsed) == 14 and len([r for r in rows if r]) == 1 + 14 + 1
@@ -349,8 +351,8 @@ class TestJournal:
         log = tmp_path / "j"
         with pytest.raises(KeyboardInterrupt):
             scan(mixed_tree, jobs=1, journal=log, progress=_stop_after(5), max_pixels=10_000)
-        again = scan(mixed_tree, jobs=1, journal=log)
-        assert again.attrs["scan"]["probed"] == 14
+        again, facts = scan(mixed_tree, jobs=1, journal=log, return_facts=True)
+        assert facts["probed"] == 14
         assert json.loads(log.read_text().splitlines()[0])["max_pixels"] != 10_000
 
     def test_rows_are_journaled_with_every_fact(self, mixed_tree, tmp_path):
@@ -390,3 +392,37 @@ class TestScanCommand:
 def test_every_row_has_the_same_fact_columns(mixed_tree):
     """A decoded file's facts have exactly the keys of blank_facts (what a rescan may reuse)."""
     assert set(probe(mixed_tree / "a/0.jpg")) == set(FACTS)
+
+
+class TestScanTo:
+    """The library call behind `labelprep scan`: a Python user gets rescans and resume too."""
+
+    def test_rescan_decodes_nothing_unchanged(self, mixed_tree, tmp_path):
+        out = tmp_path / "m.csv"
+        first, facts = scan_to(mixed_tree, out, jobs=1)
+        assert facts["probed"] == 14 and manifest.read(out).shape == first.shape
+        side = manifest.read_sidecar(out)
+        assert side["stages"]["scan"]["result"]["probed"] == 14
+        manifest.write(labelprep.split(first, seed=4), out, meta={"seed": 4, "stages": {"split": {}}})
+        again, facts = scan_to(mixed_tree, out, jobs=1)
+        assert facts == {**facts, "probed": 0, "reused": 14}
+        # the rows are new: no record of the split they no longer hold, nor its seed
+        assert set(manifest.read_sidecar(out)["stages"]) == {"scan"} and "seed" not in manifest.read_sidecar(out)
+        assert _csv(again) == _csv(first)
+
+    def test_an_interrupted_run_resumes_and_then_drops_its_journal(self, mixed_tree, tmp_path):
+        out = tmp_path / "m.csv"
+        with pytest.raises(KeyboardInterrupt):
+            scan_to(mixed_tree, out, jobs=1, progress=_stop_after(5))
+        assert not out.exists() and journal_path(out).exists()
+        resumed, facts = scan_to(mixed_tree, out, jobs=1)
+        assert facts["probed"] == 14 - 5 and not journal_path(out).exists()
+        assert out.read_bytes() == manifest.to_csv_bytes(resumed)
+
+    def test_options_are_checked_before_any_work(self, mixed_tree, tmp_path):
+        with pytest.raises(TypeError, match="min_sid"):
+            scan_to(mixed_tree, tmp_path / "m.csv", min_sid=3)
+        (tmp_path / "notes.csv").write_text("mine\n")
+        with pytest.raises(OutputExistsError):
+            scan_to(mixed_tree, tmp_path / "notes.csv", jobs=1)
+        assert (tmp_path / "notes.csv").read_text() == "mine\n"

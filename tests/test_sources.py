@@ -91,14 +91,14 @@ class TestArchives:
 
     def test_an_archive_given_as_the_root(self, tmp_path):
         archive = _zip(tmp_path / "data.zip", {"train/cat/a.jpg": _jpeg(1), "test/dog/b.jpg": _jpeg(2)})
-        m = scan(archive, jobs=1)
+        m, facts = scan(archive, jobs=1, return_facts=True)
         assert list(m["path"]) == ["test/dog/b.jpg", "train/cat/a.jpg"]
         assert list(m["label"]) == ["dog", "cat"] and list(m["given_split"]) == ["test", "train"]
-        assert m.attrs["scan"]["layout"] == "split-folders"
+        assert facts["layout"] == "split-folders"
 
     def test_split_folders_inside_an_archive_below_the_root(self, tmp_path):
         _zip(tmp_path / "root" / "data.zip", {"train/cat/a.jpg": _jpeg(1), "val/dog/b.jpg": _jpeg(2)})
-        m = scan(tmp_path / "root", jobs=1)
+        m, facts = scan(tmp_path / "root", jobs=1, return_facts=True)
         assert list(m["path"]) == ["data.zip/train/cat/a.jpg", "data.zip/val/dog/b.jpg"]
         assert list(m["label"]) == ["cat", "dog"] and list(m["given_split"]) == ["train", "val"]
 
@@ -113,8 +113,8 @@ class TestArchives:
     def test_hidden_and_system_members_are_skipped_and_counted(self, tmp_path):
         _zip(tmp_path / "root" / "a.zip", {"cat/x.jpg": _jpeg(1), "__MACOSX/cat/._x.jpg": b"junk",
                                            "cat/.DS_Store": b"junk"})
-        m = scan(tmp_path / "root", jobs=1)
-        assert list(m["path"]) == ["a.zip/cat/x.jpg"] and m.attrs["scan"]["skipped_junk"] == 2
+        m, facts = scan(tmp_path / "root", jobs=1, return_facts=True)
+        assert list(m["path"]) == ["a.zip/cat/x.jpg"] and facts["skipped_junk"] == 2
 
     def test_an_unreadable_archive_is_one_row_with_the_reason(self, tmp_path):
         (tmp_path / "root").mkdir()
@@ -303,14 +303,14 @@ def _two_sources(tmp_path, write_image):
 class TestSeveralSources:
     def test_each_root_has_its_own_layout_and_paths_say_the_source(self, tmp_path, write_image):
         old, new = _two_sources(tmp_path, write_image)
-        m = scan([old, new], jobs=1)
+        m, facts = scan([old, new], jobs=1, return_facts=True)
         assert set(m["source"]) == {"old", "new"}
         assert all(p.startswith(s + "/") for p, s in zip(m["path"], m["source"]))
         rows = _by_path(m)
         assert rows["old/cat/c1.jpg"]["label"] == "cat" and rows["old/cat/c1.jpg"]["given_split"] == ""
         assert rows["new/train/cat/n1.jpg"]["label"] == "cat"
         assert rows["new/train/cat/n1.jpg"]["given_split"] == "train"
-        assert m.attrs["scan"]["layout"] == {"old": "folders", "new": "split-folders"}
+        assert facts["layout"] == {"old": "folders", "new": "split-folders"}
         assert m["path"].is_unique and list(m["path"]) == sorted(m["path"])
 
     def test_one_root_has_no_source_column(self, class_tree):

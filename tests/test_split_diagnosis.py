@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from labelprep.cli import main
-from labelprep.errors import ParameterError
+from labelprep.errors import InputError, ParameterError
 from labelprep.manifest import write
 from labelprep.reports.split_findings import split_lines
 from labelprep.split_diagnosis import _bridge_holds, diagnose_split
@@ -148,7 +148,7 @@ class TestDiagnoseSplit:
             diagnose_split(m, tolerance=1.5)
         with pytest.raises(TypeError, match="tolerance must be a number"):
             diagnose_split(m, tolerance="0.1")
-        with pytest.raises(ParameterError, match="'split'"):
+        with pytest.raises(InputError, match="'split'"):
             diagnose_split(m.drop(columns="split"))
 
 

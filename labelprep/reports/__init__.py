@@ -12,7 +12,7 @@ import json as _json
 import os
 
 from .. import codes
-from ..errors import InputError, ParameterError
+from ..validation import check_manifest
 
 FORMAT_TAG = "labelprep-report/1"
 
@@ -67,8 +67,7 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
         from ..sources import check_root
 
         check_root(root)
-    if "path" not in manifest.columns:
-        raise InputError("the manifest has no 'path' column")
+    check_manifest(manifest, ["path"])
 
     from ..manifest import guard_output, write_text
 
