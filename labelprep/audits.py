@@ -21,7 +21,7 @@ _SPLIT_SOURCES = {"split": "the split labelprep made (split column)",
 _HEX_DIGITS = frozenset("0123456789abcdef")
 
 
-def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) -> dict:
+def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None, decisions=None) -> dict:
     """Every near-duplicate pair and user group that crosses splits, and the class balance.
 
     Parameters
@@ -36,6 +36,9 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
     split_column : str, optional
         The column holding each row's split. By default ``split`` when any row has one, else
         ``given_split`` (the train/val/test folder the scanner found).
+    decisions : pandas.DataFrame, optional
+        A decisions table (:func:`labelprep.decisions.load`): pairs it separates are not copies,
+        so they are no leak; they are counted in ``separated``.
 
     Returns
     -------
@@ -52,6 +55,7 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
         - ``group_leaks``: one dict per user group found in more than one split: ``group``,
           ``splits`` (``{split: rows}``) and ``paths`` (``{split: [paths]}``); sorted by group.
         - ``leaking_files``: how many files are in at least one leaking pair or group.
+        - ``separated``: pairs across splits left out because a decision separates them.
         - ``balance``: :func:`labelprep.balance.by_split` of the split column.
 
     Examples
@@ -81,6 +85,10 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
                             label=manifest["label"].fillna("").astype(str))
     frame = frame[frame["_split"] != ""].sort_values("path", kind="stable").reset_index(drop=True)
     pairs = _leaking_pairs(frame, max_distance)
+    from .decisions import separated_mask
+
+    apart = separated_mask(frame["path"], pairs["a"].to_numpy(), pairs["b"].to_numpy(), decisions)
+    pairs = pairs[~apart]
     groups = _leaking_groups(frame)
     path, label, split = (frame[c].to_numpy(dtype=object) for c in ("path", "label", "_split"))
     a, b = pairs["a"].to_numpy(), pairs["b"].to_numpy()
@@ -95,17 +103,18 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None) ->
     return {"split_column": column, "max_distance": max_distance, "rows": int(len(frame)),
             "groups_known": known,
             "near_leaks": near, "group_leaks": groups,
-            "leaking_files": len(set(path[a]) | set(path[b]) | in_groups),
+            "leaking_files": len(set(path[a]) | set(path[b]) | in_groups), "separated": int(apart.sum()),
             "balance": by_split(manifest, split_column=column)}
 
 
 def audit_path(target, *, max_distance=defaults.MAX_DISTANCE, split_column=None, progress=None,
-               **scan_options) -> dict:
+               decisions=None, **scan_options) -> dict:
     """:func:`audit` of a manifest file, or of a folder laid out ``ROOT/<train|val|test>/<label>/``.
 
     A folder is scanned first, in memory only (nothing is written beside it), with
     ``scan_options`` (those of :func:`labelprep.scan`: ``jobs``, ``include_hidden``, ...); a
     manifest (a file, or a folder of Parquet part files) is read, and they do not apply.
+    ``decisions`` is passed on to :func:`audit`.
 
     Examples
     --------
@@ -122,7 +131,7 @@ def audit_path(target, *, max_distance=defaults.MAX_DISTANCE, split_column=None,
         m = scan(target, progress=progress, **scan_options)
     else:
         m = read(target)
-    return audit(m, max_distance=max_distance, split_column=split_column)
+    return audit(m, max_distance=max_distance, split_column=split_column, decisions=decisions)
 
 
 def _is_part_folder(folder) -> bool:
@@ -165,6 +174,8 @@ def render(result: dict, *, limit: int = 20) -> str:
              f"{result['rows']} files in a split, {result['leaking_files']} of them leaking",
              f"near-duplicate pairs across splits: {len(near)} "
              f"({sum(p['exact'] for p in near)} byte-identical), radius {result['max_distance']} bits"]
+    if result.get("separated"):
+        lines.append(f"  not counted: {result['separated']} across splits that the decisions file separates (not copies)")
     for p in near[:limit]:
         kind = "same bytes" if p["exact"] else f"{p['distance']:>2} bits"
         lines.append(f"  {kind:>10}  {p['split_a']}:{p['path_a']} [{p['label_a']}]"

@@ -140,6 +140,34 @@ _fail_on_prepare = click.option(
                             "issue of this severity or worse. " + _SHORTFALL_HELP)
 
 
+_decisions = click.option(
+    "--decisions", "decisions", type=click.Path(exists=True, dir_okay=False, path_type=Path),
+    default=None, metavar="FILE",
+    help="Decisions file (CSV path,action,value,note: drop, relabel, separate, join, keep), as "
+         "written by `labelprep review`. Default: decisions.csv beside the manifest (in --out "
+         "for prepare), when it exists.")
+
+
+def _load_decisions(given, folder):
+    from .pipeline import load_decisions
+
+    return load_decisions(folder, given)
+
+
+def _tell_decisions(found: dict):
+    """Decisions that did not take effect, on stderr (never silent, also with --quiet)."""
+    for u in found["unknown"]:
+        if u["action"] in ("separate", "join"):
+            named = f"{u['path']!r} and {u['value']!r}, one of them not in the manifest"
+        else:
+            named = f"{u['path']!r}, not in the manifest"
+        click.echo(f"warning: decisions line {u['line']}: {u['action']} names {named}; not applied",
+                   err=True)
+    for a, b in found["still_joined"]:
+        click.echo(f"warning: {a!r} and {b!r} are separated but other links keep them in one "
+                   "cluster; separate them from those files too", err=True)
+
+
 def _progress(quiet: bool):
     from .progress import terminal
 
@@ -269,14 +297,24 @@ def check(manifest_path, fail_on, force, quiet, **limits):
 @main.command()
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @GROUP_OPTIONS
+@_decisions
 @_force
 @_quiet
-def group(manifest_path, force, quiet, **chosen):
-    """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns)."""
-    from .clusters import group as run
+def group(manifest_path, decisions, force, quiet, **chosen):
+    """Find exact and near-duplicate clusters in MANIFEST (dup_group, bundle, keeper columns).
 
-    m = run(_read_to_update(manifest_path, force), progress=_progress(quiet), **chosen)
-    _write_back(m, manifest_path, "group", options.record(chosen, "group"), force)
+    The decisions file is honoured: separate and join change the links, drop, relabel and keep
+    the rows (decided column).
+    """
+    from .clusters import group as run
+    from .decisions import apply, digest_of, findings
+
+    decided = _load_decisions(decisions, manifest_path.parent)
+    m = apply(run(apply(_read_to_update(manifest_path, force), decided), progress=_progress(quiet),
+                  decisions=decided, **chosen), decided)
+    _write_back(m, manifest_path, "group",
+                {**options.record(chosen, "group"), "decisions": digest_of(decided)}, force)
+    _tell_decisions(findings(m, decided))
     in_clusters = int(m["dup_group"].notna().sum())
     _say(quiet, f"{m['dup_group'].nunique()} near-duplicate clusters holding {in_clusters} files")
 
@@ -285,9 +323,10 @@ def group(manifest_path, force, quiet, **chosen):
 @click.argument("manifest_path", metavar="MANIFEST", type=_existing_manifest)
 @SPLIT_OPTIONS
 @_fail_on_split
+@_decisions
 @_force
 @_quiet
-def split(manifest_path, fail_on, force, quiet, **chosen):
+def split(manifest_path, fail_on, decisions, force, quiet, **chosen):
     """Assign train/val/test so that no cluster or group spans two splits.
 
     Two ratios mean train,test. With --folds K the split holds train and test and every train
@@ -295,14 +334,28 @@ def split(manifest_path, fail_on, force, quiet, **chosen):
     path) keep their split and only new files are placed. A manifest of a train/val/test folder
     tree keeps the split of its folders unless --resplit. When the bundles (clusters joined
     with groups) make a ratio or a class unreachable, it says why and which files bridge them.
+    The decisions file's drop, relabel and keep rows are honoured; its separate and join rows
+    act in group.
     """
+    from .decisions import PAIR_ACTIONS, apply, digest_of, findings as decision_findings
+    from .manifest import read_sidecar
     from .reports.split_findings import warning_lines
     from .split_diagnosis import diagnose_split
     from .splits import split as run, split_summary
 
     old = _read(chosen["keep_from"]) if chosen["keep_from"] is not None else None
-    m = run(_read_to_update(manifest_path, force), progress=_progress(quiet), **{**chosen, "keep_from": old})
-    _write_back(m, manifest_path, "split", options.record(chosen, "split"), force)
+    decided = _load_decisions(decisions, manifest_path.parent)
+    m = apply(run(apply(_read_to_update(manifest_path, force), decided), progress=_progress(quiet),
+                  **{**chosen, "keep_from": old}), decided)
+    stages = read_sidecar(manifest_path).get("stages", {})
+    grouped = (stages.get("group", {}).get("options", {}).get("decisions")
+               or stages.get("prepare", {}).get("decisions") or {})
+    if decided["action"].isin(PAIR_ACTIONS).any() and grouped.get("sha256") != decided.attrs.get("sha256"):
+        click.echo("warning: the decisions file has separate/join rows that group has not seen; "
+                   "run labelprep group first for them to take effect", err=True)
+    _write_back(m, manifest_path, "split",
+                {**options.record(chosen, "split"), "decisions": digest_of(decided)}, force)
+    _tell_decisions(decision_findings(m, decided))
     summary = split_summary(m)
     sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
@@ -353,17 +406,28 @@ def _gate_split(findings, fail_on: str, empty=()):
               help="Write a self-contained HTML report with thumbnails.")
 @click.option("--root", type=_existing_dir, default=None,
               help="Folder the manifest's paths are relative to (default: from the manifest's sidecar).")
+@_decisions
 @_force
 @_quiet
-def report(manifest_path, json_path, md_path, html_path, root, force, quiet):
-    """Class balance per split, issues and duplicate clusters of MANIFEST."""
+def report(manifest_path, json_path, md_path, html_path, root, decisions, force, quiet):
+    """Class balance per split, issues and duplicate clusters of MANIFEST.
+
+    The decisions file's drop, relabel and keep rows are shown applied; the report lists
+    decisions naming files the manifest lacks.
+    """
+    from .decisions import apply, digest_of, findings
     from .manifest import read_sidecar
     from .reports import report as run, terminal_table
 
     meta = read_sidecar(manifest_path)
     root = root or _root_from(meta)
-    summary = run(_read(manifest_path), json=json_path, html=html_path, markdown=md_path,
-                  root=root, meta=meta, force=force)
+    decided = _load_decisions(decisions, manifest_path.parent)
+    m = apply(_read(manifest_path), decided)
+    found = findings(m, decided)
+    summary = run(m, json=json_path, html=html_path, markdown=md_path, root=root, meta=meta,
+                  force=force, decisions={**digest_of(decided), **found} if len(decided) else None,
+                  review=manifest_path.parent)
+    _tell_decisions(found)
     _say(quiet, terminal_table(summary))
 
 
@@ -380,17 +444,22 @@ def _root_from(meta: dict):
 @click.option("--json", "json_path", type=click.Path(path_type=Path), help="Write the audit as JSON.")
 @options.BY_NAME["max_distance"].decorator()
 @SCAN_OPTIONS
+@_decisions
 @_force
 @_quiet
-def audit(target, fail_on, json_path, max_distance, force, quiet, **scan_options):
+def audit(target, fail_on, json_path, max_distance, decisions, force, quiet, **scan_options):
     """Leaks and class balance of an existing split.
 
     MANIFEST_OR_ROOT is a manifest with a split column, or a folder laid out as
-    ROOT/<train|val|test>/<label>/... (scanned first, in memory only).
+    ROOT/<train|val|test>/<label>/... (scanned first, in memory only). Pairs the decisions
+    file separates (beside the manifest, or --decisions) are not copies, so no leak.
     """
     from .audits import audit_path, leak_gate, render
 
-    result = audit_path(target, max_distance=max_distance, progress=_progress(quiet), **scan_options)
+    # beside a manifest file its decisions.csv applies; a scanned folder has none unless given
+    decided = _load_decisions(decisions, target.parent) if decisions is not None or not target.is_dir() else None
+    result = audit_path(target, max_distance=max_distance, progress=_progress(quiet), decisions=decided,
+                        **scan_options)
     if json_path is not None:
         import json
 
@@ -433,6 +502,7 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 @click.option("--out", "out", required=True, type=click.Path(file_okay=False, path_type=Path),
               metavar="DIR", help="Folder for manifest.csv, report.json and report.html.")
 @options.click_options(*options.STAGES)
+@_decisions
 @_fail_on_prepare
 @_force
 @_quiet
@@ -448,6 +518,7 @@ def prepare(roots, out, fail_on, quiet, **chosen):
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, progress=_progress(quiet), **chosen)
     empty = _print_outcome(m, summary, out, quiet, options.for_stage("check", chosen), chosen)
+    _tell_decisions(summary["decisions"])
     if fail_on == SHORTFALL:
         _gate_split(summary["split_diagnosis"], fail_on, empty)
     else:
@@ -473,6 +544,38 @@ def _print_outcome(m, summary, out: Path, quiet: bool, checked: dict, chosen=Non
     old = _read(keep) if keep is not None else None
     return _print_split_notes(m, old, quiet, ratios=chosen.get("ratios"), folds=chosen.get("folds"),
                               resplit=chosen.get("resplit", False))
+
+
+@main.command()
+@click.argument("folder", metavar="DIR", type=_existing_dir)
+@click.option("--decisions", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              metavar="FILE", help="Decisions file the page writes (default: DIR/decisions.csv).")
+@click.option("--port", type=click.IntRange(0, 65535), default=0, show_default=True,
+              help="Port on 127.0.0.1; 0 picks a free one.")
+@click.option("--no-browser", is_flag=True, help="Print the address only; do not open a browser.")
+def review(folder, decisions, port, no_browser):
+    """Review what needs a human in a prepare folder DIR, on a local page, and record decisions.
+
+    Serves a page on 127.0.0.1 (address printed with a one-time token) showing every
+    near-duplicate cluster, label conflict and flagged file, a page at a time. Keys decide:
+    d drop, r relabel, s separate, m/j join, k keep, u undo, Shift+R re-runs group, split and
+    report. Each decision is written to the decisions file at once. Ctrl-C stops the server.
+    """
+    from .reviews import make_server
+
+    server = make_server(folder, decisions=decisions, port=port)
+    click.echo(f"review page: {server.url}")
+    click.echo(f"decisions go to {server.decisions_path}; Ctrl-C stops")
+    if not no_browser:
+        import webbrowser
+
+        webbrowser.open(server.url)
+    try:
+        server.serve_forever()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        server.server_close()
 
 
 @main.command()

@@ -37,7 +37,7 @@ _STAGE = "group"
 
 
 def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, flips=False,
-          progress=None, cluster=None):
+          progress=None, cluster=None, decisions=None):
     """Cluster exact and near-duplicates and mark them in a new manifest.
 
     Parameters
@@ -60,6 +60,11 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     cluster : str, optional
         Address of a Dask scheduler: the near-pair search runs as tasks on its workers
         (:func:`labelprep.neighbors.radius_pairs`); the same result.
+    decisions : pandas.DataFrame, optional
+        A decisions table (:func:`labelprep.decisions.load`): its ``separate`` pairs lose their
+        direct link and its ``join`` pairs gain one before clustering
+        (:func:`labelprep.decisions.edit_links`). The row decisions are applied around this
+        stage by :func:`labelprep.decisions.apply`.
 
     Returns
     -------
@@ -103,7 +108,10 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     sha = _text(rows, "sha256")
     exact = _same_value_links(sha)
     near = near_links(rows, max_distance=int(max_distance), flips=flips, progress=progress, cluster=cluster)
-    cluster = _components(n, np.concatenate([exact, near], axis=1))
+    from .decisions import edit_links
+
+    links = edit_links(rows["path"], np.concatenate([exact, near], axis=1), decisions)
+    cluster = _components(n, links)
     size = np.bincount(cluster, minlength=n)[cluster]
     in_cluster = size > 1
 
@@ -117,7 +125,7 @@ def group(manifest, *, max_distance=DEFAULT_MAX_DISTANCE, keep_conflicts=False, 
     mixed = named.groupby(cluster).transform("nunique").to_numpy() > 1
 
     user_group = _text(rows, "group")
-    bundle = _components(n, np.concatenate([exact, near, _same_value_links(user_group)], axis=1))
+    bundle = _components(n, np.concatenate([links, _same_value_links(user_group)], axis=1))
 
     out = rows.copy()
     dup_group = pd.array(np.zeros(n, dtype=np.int64), dtype="Int64")

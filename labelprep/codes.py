@@ -45,6 +45,7 @@ _CODE_LIST = [
     IssueCode("near-copy", WARNING, "group", "looks like another file that is not byte-identical to it: perceptual hashes of the whole image or of a centred box within the radius"),
     IssueCode("label-conflict", ERROR, "group", "its near-duplicate cluster holds more than one label"),
     IssueCode("thin-class", WARNING, "split", "its class has fewer bundles than there are splits (or folds), so some split lacks it"),
+    IssueCode("dropped", ERROR, "decisions", "a drop decision in the decisions file leaves the file out of the split"),
 ]
 
 CODES: dict[str, IssueCode] = {c.code: c for c in _CODE_LIST}

@@ -82,6 +82,11 @@ _COLUMN_LIST = [
     Column("keeper", "boolean", "group", "the one file kept per near-duplicate cluster (highest resolution, then largest file, then path); true for files with no copy"),
     # splitting
     Column("fold", "Int64", "split", "cross-validation fold (0..K-1) when --folds K was asked; empty otherwise"),
+    # decisions (labelprep.decisions): present only when a decisions file holds rows
+    Column("decided", "str", "decisions", "the actions of the decisions file that applied to the row (drop, relabel, separate, join, keep), ';'-separated"),
+    Column("decision_note", "str", "decisions", "the notes of those decisions, ' | '-separated"),
+    Column("label_original", "str", "decisions", "the label before a relabel decision; empty when not relabelled"),
+    Column("muted", "str", "decisions", "warning codes a keep decision removed from issues, ';'-separated"),
 ]
 
 COLUMNS: dict[str, Column] = {c.name: c for c in _COLUMN_LIST}

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from . import options as spec
+from .decisions import digest_of, findings
 from .errors import InputError
 
 MANIFEST_NAME = "manifest.csv"
@@ -12,7 +13,7 @@ REPORT_JSON = "report.json"
 REPORT_HTML = "report.html"
 
 
-def prepare(root, out, *, force=False, progress=None, **options):
+def prepare(root, out, *, force=False, progress=None, decisions=None, **options):
     """Run every stage on ``root`` and write ``out/manifest.csv``, ``report.json``, ``report.html``.
 
     ``root`` is a folder, an archive or a list of them (several sources, see
@@ -27,7 +28,9 @@ def prepare(root, out, *, force=False, progress=None, **options):
     :func:`~labelprep.scan`. Nothing in ``out`` is indexed, nor a label table stored inside a
     root. The sidecar records every option that shapes the result
     (:func:`labelprep.options.record`) and what the scan did (``stages.prepare.scan``: what it
-    left out and skipped, empty folders).
+    left out and skipped, empty folders). ``decisions`` is a decisions file
+    (:mod:`labelprep.decisions`); by default ``out/decisions.csv`` when it exists. Its digest is
+    recorded in the sidecar.
 
     Returns
     -------
@@ -41,11 +44,9 @@ def prepare(root, out, *, force=False, progress=None, **options):
     """
     from . import manifest
     from .checks import check
-    from .clusters import group
     from .reports import report
     from .scanner import resuming, scan
     from .sources import describe, name_roots, roots_of
-    from .splits import split
 
     chosen = spec.resolve(options, *spec.STAGES)
     out = Path(out)
@@ -59,15 +60,73 @@ def prepare(root, out, *, force=False, progress=None, **options):
     keep_from = chosen["keep_from"]
     if isinstance(keep_from, (str, Path)):
         keep_from = manifest.read(keep_from)
+    decided = load_decisions(out, decisions)
 
     with resuming(target, root=root, max_pixels=chosen["max_pixels"]) as (previous, journal):
         m, scan_facts = scan(root, previous=previous, journal=journal, progress=progress, return_facts=True,
                              exclude=[out], **spec.for_stage("scan", chosen))
         m = check(m, **spec.for_stage("check", chosen))
-        m = group(m, progress=progress, **spec.for_stage("group", chosen))
-        m = split(m, progress=progress, **{**spec.for_stage("split", chosen), "keep_from": keep_from})
-        meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts)}
+        m = group_and_split(m, decided, group_options={"progress": progress, **spec.for_stage("group", chosen)},
+                            split_options={"progress": progress, **spec.for_stage("split", chosen),
+                                           "keep_from": keep_from})
+        meta = {**where, **spec.sidecar("prepare", spec.record(chosen, *spec.STAGES), scan=scan_facts,
+                                        decisions=digest_of(decided))}
         manifest.write(m, target, meta=meta, force=True, new_sidecar=True)
     summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(where),
-                     meta=manifest.read_sidecar(target), force=force)
+                     meta=manifest.read_sidecar(target), force=force,
+                     decisions={**digest_of(decided), **findings(m, decided)}, review=out)
+    return m, summary
+
+
+def load_decisions(folder, decisions=None):
+    """The decisions table a run in ``folder`` honours: the file ``decisions`` (which must
+    exist), else ``folder/decisions.csv`` when it exists (else no decision)."""
+    from .decisions import FILE_NAME, load
+
+    if decisions is not None:
+        return load(decisions)
+    return load(Path(folder) / FILE_NAME, required=False)
+
+
+def group_and_split(m, decisions, *, group_options: dict, split_options: dict):
+    """The group and split stages with ``decisions`` honoured: row decisions before each stage
+    (a relabel changes conflicts and strata) and after it (a keep mutes the codes it found),
+    pair decisions inside group."""
+    from .clusters import group
+    from .decisions import apply
+    from .splits import split
+
+    m = apply(group(apply(m, decisions), decisions=decisions, **group_options), decisions)
+    return apply(split(m, **split_options), decisions)
+
+
+def rerun(out, *, decisions=None, progress=None):
+    """Group, split and report the manifest of a ``prepare`` folder ``out`` again, with the
+    options its sidecar records and the decisions file as it is now; no file is decoded again.
+
+    The review page calls this after decisions change. Returns what :func:`prepare` returns.
+    """
+    from . import manifest
+    from .reports import report
+    from .sources import roots_of
+
+    out = Path(out)
+    target = out / MANIFEST_NAME
+    meta = manifest.read_sidecar(target)
+    recorded = meta.get("stages", {}).get("prepare", {}).get("options")
+    if recorded is None:
+        raise InputError(f"{target} was not written by prepare (its sidecar records no prepare options)")
+    chosen = load_decisions(out, decisions)
+    split_options = spec.for_stage("split", recorded)
+    keep_from = split_options.pop("keep_from", None)
+    if isinstance(keep_from, str) and Path(keep_from).is_file():  # as prepare had it
+        split_options["keep_from"] = manifest.read(keep_from)
+    m = group_and_split(manifest.read(target), chosen,
+                        group_options={"progress": progress, **spec.for_stage("group", recorded)},
+                        split_options={"progress": progress, **split_options})
+    prepare_stage = {**meta["stages"]["prepare"], "decisions": digest_of(chosen)}
+    manifest.write(m, target, meta={"stages": {"prepare": prepare_stage}}, force=True)
+    summary = report(m, json=out / REPORT_JSON, html=out / REPORT_HTML, root=roots_of(meta),
+                     meta=manifest.read_sidecar(target), force=True,
+                     decisions={**digest_of(chosen), **findings(m, chosen)}, review=out)
     return m, summary

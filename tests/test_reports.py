@@ -80,14 +80,18 @@ class _Page(HTMLParser):
     def __init__(self):
         super().__init__()
         self.counts, self.clusters, self.images, self.urls = {}, {}, [], []
-        self._count = None
+        self.members = {}  # cluster id -> paths of its members, in page order
+        self._count = self._cluster = None
 
     def handle_starttag(self, tag, attrs):
         a = dict(attrs)
         if "data-count" in a:
             self._count = a["data-count"]
         if "data-cluster" in a:
-            self.clusters[int(a["data-cluster"])] = a.get("class", "")
+            self._cluster = int(a["data-cluster"])
+            self.clusters[self._cluster] = a.get("class", "")
+        if "data-member" in a:
+            self.members.setdefault(self._cluster, []).append(a["data-member"])
         if tag == "img":
             self.images.append(a["src"])
         self.urls += [v for k, v in attrs if k in ("src", "href") and v]
@@ -250,18 +254,31 @@ class TestHtml:
         text = (tmp_path / "r.html").read_text()
         assert "<script>" not in text and "&lt;script&gt;x&lt;/script&gt;.png" in text
 
-    def test_caps_are_stated(self, dataset, tmp_path, monkeypatch):
-        """Over the caps the page lists fewer clusters and thumbnails, and says so."""
+    def test_budgets_are_stated(self, dataset, tmp_path, monkeypatch):
+        """Over its budgets the page lists fewer clusters and thumbnails, says how many it leaves
+        out, and names the review command that shows them."""
         root, m = dataset
         monkeypatch.setattr(page, "CLUSTERS_LISTED", 2)
-        monkeypatch.setattr(page, "CLUSTERS_WITH_THUMBS", 1)
-        reports.report(m, html=tmp_path / "r.html", root=root)
+        monkeypatch.setattr(page, "THUMBNAILS", 3)
+        reports.report(m, html=tmp_path / "r.html", root=root, review="out")
         text = (tmp_path / "r.html").read_text()
         parsed = parse_page(text)
         assert sorted(parsed.clusters) == [2, 3]  # the conflict, then the cross-split cluster
-        assert len(parsed.images) == 2
-        assert "The first 2 of 3 clusters are listed." in text
-        assert "Thumbnails are drawn for the first 1 clusters" in text
+        assert len(parsed.images) == 3
+        listed = sum(len(files) for files in parsed.members.values())
+        assert parsed.counts["clusters-left-out"] == 1
+        assert parsed.counts["files-without-thumbnail"] == listed - 3
+        assert "<code>labelprep review out</code> shows every cluster" in text
+
+    def test_every_cluster_within_budget(self, dataset, tmp_path):
+        """Within the budgets every cluster and every member is on the page, with no budget note."""
+        root, m = dataset
+        reports.report(m, html=tmp_path / "r.html", root=root)
+        text = (tmp_path / "r.html").read_text()
+        parsed = parse_page(text)
+        members = m[m["dup_group"].notna()].groupby("dup_group")["path"].apply(sorted)
+        assert {k: sorted(v) for k, v in parsed.members.items()} == members.to_dict()
+        assert 'id="cluster-budget"' not in text
 
     def test_without_root_no_thumbnails(self, dataset, tmp_path):
         """Without the scanned folder the clusters are listed as text and the page says why."""

@@ -18,7 +18,7 @@ FORMAT_TAG = "labelprep-report/1"
 
 
 def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=None,
-           force: bool = False) -> dict:
+           force: bool = False, decisions=None, review=None) -> dict:
     """Summarise ``manifest`` and write the report files that are asked for.
 
     Parameters
@@ -38,6 +38,12 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     force : bool
         Replace output files that labelprep did not write (see
         :func:`labelprep.manifest.guard_output`).
+    decisions : dict, optional
+        What applying the decisions file gave (:func:`labelprep.decisions.digest_of` merged with
+        :func:`labelprep.decisions.findings`); recorded as ``summary["decisions"]`` and shown.
+    review : str or Path, optional
+        The output folder to name in ``labelprep review DIR`` where the HTML page leaves
+        thumbnails out to stay within its size budget.
 
     Returns
     -------
@@ -76,6 +82,8 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
             guard_output(target, force=force)  # all of them before the work
     m = _complete(manifest)
     summary = _summary(m, meta or {})
+    if decisions is not None:
+        summary["decisions"] = _jsonable(decisions)
 
     if json is not None:
         write_text(json, to_json(summary), force=force)
@@ -86,7 +94,7 @@ def report(manifest, *, json=None, html=None, markdown=None, root=None, meta=Non
     if html is not None:
         from .page import render
 
-        write_text(html, render(m, summary, root=root), force=force)
+        write_text(html, render(m, summary, root=root, review=review), force=force)
     return summary
 
 

@@ -1,8 +1,9 @@
 """The HTML report: one self-contained page (styles inline, thumbnails as data: URIs, no script).
 
 The page is rendered from ``templates/report.html.j2`` with autoescaping on. Its Content-Security-
-Policy forbids every network fetch, so it opens the same offline as online. To stay quick and small
-on big manifests it caps how much it lists and says so where it does.
+Policy forbids every network fetch, so it opens the same offline as online. Every near-duplicate
+cluster is listed; to stay small on big manifests the page has a budget of clusters and of
+thumbnails, and says where it leaves anything out and that ``labelprep review`` shows it all.
 """
 
 from __future__ import annotations
@@ -18,21 +19,24 @@ from .text import UNASSIGNED, _balance_rows, _class_rows, _warning_lines, flatte
 TEMPLATES = Path(__file__).parent / "templates"
 THUMB_SIDE = 120          # CSS pixels of a tile; images are made at twice that for sharp phone screens
 FILES_PER_ISSUE = 200     # files listed under each issue code
-CLUSTERS_LISTED = 500     # clusters listed at all
-CLUSTERS_WITH_THUMBS = 60  # of those, the first ones get thumbnails
-MEMBERS_PER_STRIP = 16    # files drawn in one cluster's strip
+# budgets of the page's size: 20,000 clusters listed with every member as text are about 10 MB of
+# HTML, 2,000 thumbnails of about 8 KB (base64 included) about 16 MB; past them, the page says how
+# many it leaves out and points to the review page, which pages through everything
+CLUSTERS_LISTED = 20_000
+THUMBNAILS = 2_000        # thumbnails drawn, over all clusters, most urgent cluster first
 SPLIT_COLOURS = {"train": "#2f6690", "val": "#c9822b", "test": "#3a7d44"}
 OTHER_COLOUR = "#7a6f9b"
 
 
-def render(m, summary: dict, *, root=None) -> str:
-    """The HTML text of the report of completed manifest ``m`` with its ``summary``."""
+def render(m, summary: dict, *, root=None, review=None) -> str:
+    """The HTML text of the report of completed manifest ``m`` with its ``summary``; ``review``
+    is the output folder the page names in ``labelprep review DIR`` where it leaves things out."""
     import jinja2
 
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(TEMPLATES), autoescape=True,
                              trim_blocks=True, lstrip_blocks=True, undefined=jinja2.StrictUndefined)
     env.filters["plural"] = plural
-    clusters, clusters_total = _clusters(m, root)
+    clusters, clusters_total, unthumbed = _clusters(m, root)
     class_header, class_rows = _class_rows(summary)
     balance_header, balance_rows = _balance_rows(summary)
     source_header, source_table = source_rows(summary) if "sources" in summary else ([], [])
@@ -47,9 +51,9 @@ def render(m, summary: dict, *, root=None) -> str:
         **_shortfall(summary),
         issues=_issue_files(m, summary),
         files_per_issue=FILES_PER_ISSUE,
-        clusters=clusters, clusters_total=clusters_total,
-        clusters_listed=CLUSTERS_LISTED, clusters_with_thumbs=CLUSTERS_WITH_THUMBS,
-        members_per_strip=MEMBERS_PER_STRIP, thumb_side=THUMB_SIDE,
+        clusters=clusters, clusters_total=clusters_total, unthumbed=unthumbed,
+        clusters_listed=CLUSTERS_LISTED, thumbnails=THUMBNAILS, thumb_side=THUMB_SIDE,
+        review_command=f"labelprep review {review if review is not None else 'DIR'}",
         has_root=root is not None,
         options=[(stage, flatten(value)) for stage, value in summary["options"].items()],
     )
@@ -90,8 +94,9 @@ def _issue_files(m, summary: dict) -> list:
     return found
 
 
-def _clusters(m, root) -> tuple[list, int]:
-    """The clusters to draw, most urgent first, with members, distances and thumbnails."""
+def _clusters(m, root) -> tuple[list, int, int]:
+    """The clusters to list, most urgent first, with members, distances and thumbnails; the
+    number of clusters in all, and of listed files left without a thumbnail by the budget."""
     table = cluster_table(m)
     shown = table.head(CLUSTERS_LISTED)
     sub = m.loc[m["dup_group"].isin(shown.index)]
@@ -107,20 +112,22 @@ def _clusters(m, root) -> tuple[list, int]:
                             sub["phash"], risky):
         members_of.setdefault(int(gid), []).append(fields)
     out = []
-    for rank, (gid, size, conflict, leak) in enumerate(zip(shown.index, shown["size"], shown["conflict"], shown["leak"])):
+    budget = THUMBNAILS if root is not None else 0
+    unthumbed = 0
+    for gid, size, conflict, leak in zip(shown.index, shown["size"], shown["conflict"], shown["leak"]):
         members = members_of[int(gid)]
         keeper_hash = members[0][3]
-        with_thumbs = root is not None and rank < CLUSTERS_WITH_THUMBS
         files = []
         for i, (path, label, split, phash, skip) in enumerate(members):
-            draw = with_thumbs and i < MEMBERS_PER_STRIP
-            previewable = draw and not skip
+            draw = budget > 0
+            thumb = thumbnail(root, path) if draw and not skip else None
+            budget -= thumb is not None  # a file that cannot be previewed costs no budget
+            unthumbed += root is not None and not draw
             files.append({"path": path, "label": label, "split": split or "left out", "keeper": i == 0,
-                          "distance": hamming(keeper_hash, phash),
-                          "thumb": thumbnail(root, path) if previewable else None, "drawn": draw})
+                          "distance": hamming(keeper_hash, phash), "thumb": thumb, "drawn": draw})
         out.append({"id": int(gid), "size": int(size), "conflict": bool(conflict), "leak": bool(leak),
                     "files": files})
-    return out, len(table)
+    return out, len(table), unthumbed
 
 
 def hamming(a: str, b: str):
@@ -141,13 +148,21 @@ def thumbnail(root, path: str):
 
     Never raises: a file that is gone, unreadable or outside ``root`` gets no thumbnail.
     """
+    data = preview_jpeg(root, path, 2 * THUMB_SIDE)
+    return None if data is None else "data:image/jpeg;base64," + base64.b64encode(data).decode("ascii")
+
+
+def preview_jpeg(root, path: str, side: int, quality: int = 72):
+    """JPEG bytes of ``root/path`` oriented and shrunk to fit ``side`` pixels, or None.
+
+    Never raises: a file that is gone, unreadable or outside ``root`` gets no preview.
+    """
     from PIL import Image, ImageOps
 
     from ..probe import register_plugins
     from ..sources import read_bytes
 
     register_plugins()  # HEIF and JPEG XL previews, where their plugins are installed
-    side = 2 * THUMB_SIDE
     try:
         with Image.open(io.BytesIO(read_bytes(root, path))) as im:  # a file, or an archive member
             im.draft("RGB", (side, side))  # JPEG: decode at reduced scale, much faster
@@ -159,10 +174,10 @@ def thumbnail(root, path: str):
                 im = Image.new("RGB", rgba.size, "white")
                 im.paste(rgba, mask=rgba.getchannel("A"))
             buffer = io.BytesIO()
-            im.convert("RGB").save(buffer, "JPEG", quality=72)
+            im.convert("RGB").save(buffer, "JPEG", quality=quality)
     except Exception:  # noqa: BLE001 - any decoder failure only means "no preview"
         return None
-    return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+    return buffer.getvalue()
 
 
 def _eight_bit(im):
