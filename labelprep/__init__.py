@@ -24,6 +24,7 @@ _EXPORTS = {
     "scan": "scanner",
     "check": "checks",
     "group": "clusters",
+    "verified_links": "clusters",
     "split": "splits",
     "split_summary": "splits",
     "diagnose_split": "split_diagnosis",

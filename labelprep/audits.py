@@ -21,7 +21,8 @@ _SPLIT_SOURCES = {"split": "the split labelprep made (split column)",
 _HEX_DIGITS = frozenset("0123456789abcdef")
 
 
-def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None, decisions=None) -> dict:
+def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, flips=True, split_column=None,
+          decisions=None) -> dict:
     """Every near-duplicate pair and user group that crosses splits, and the class balance.
 
     Parameters
@@ -33,6 +34,8 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None, de
         Largest Hamming distance (bits of a 64-bit perceptual hash) at which two files count as
         near-duplicates, 0 to 64, as in :func:`labelprep.group` (whose verification the pairs
         go through: centre check, low-detail rule).
+    flips : bool, default True
+        Also count mirrored copies, as :func:`labelprep.group` does unless told not to.
     split_column : str, optional
         The column holding each row's split. By default ``split`` when any row has one, else
         ``given_split`` (the train/val/test folder the scanner found).
@@ -78,13 +81,15 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None, de
         raise TypeError(f"max_distance must be an int, got {type(max_distance).__name__}")
     if not 0 <= max_distance <= 64:
         raise ParameterError(f"max_distance must be 0 to 64 bits, got max_distance={max_distance!r}")
+    if not isinstance(flips, bool):
+        raise TypeError(f"flips must be True or False, got {type(flips).__name__}")
     column = _split_column(manifest, split_column)
 
     frame = manifest.assign(_split=manifest[column].fillna("").astype(str),
                             path=manifest["path"].astype(str),
                             label=manifest["label"].fillna("").astype(str))
     frame = frame[frame["_split"] != ""].sort_values("path", kind="stable").reset_index(drop=True)
-    pairs = _leaking_pairs(frame, max_distance)
+    pairs = _leaking_pairs(frame, max_distance, flips)
     from .decisions import separated_mask
 
     apart = separated_mask(frame["path"], pairs["a"].to_numpy(), pairs["b"].to_numpy(), decisions)
@@ -107,14 +112,17 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, split_column=None, de
             "balance": by_split(manifest, split_column=column)}
 
 
-def audit_path(target, *, max_distance=defaults.MAX_DISTANCE, split_column=None, progress=None,
+def audit_path(target, *, max_distance=None, flips=None, split_column=None, progress=None,
                decisions=None, **scan_options) -> dict:
     """:func:`audit` of a manifest file, or of a folder laid out ``ROOT/<train|val|test>/<label>/``.
 
     A folder is scanned first, in memory only (nothing is written beside it), with
     ``scan_options`` (those of :func:`labelprep.scan`: ``jobs``, ``include_hidden``, ...); a
     manifest (a file, or a folder of Parquet part files) is read, and they do not apply.
-    ``decisions`` is passed on to :func:`audit`.
+    ``max_distance`` and ``flips`` left as None are those the manifest was grouped with (its
+    sidecar's group or prepare record), else the defaults: the audit then links exactly the
+    pairs the group stage linked, so a split labelprep made never fails it. ``decisions`` is
+    passed on to :func:`audit`.
 
     Examples
     --------
@@ -123,15 +131,32 @@ def audit_path(target, *, max_distance=defaults.MAX_DISTANCE, split_column=None,
     """
     from pathlib import Path
 
-    from .manifest import read
+    from .manifest import read, read_sidecar
     from .scanner import scan
 
     target = Path(target)
+    recorded = {}
     if target.is_dir() and not _is_part_folder(target):
         m = scan(target, progress=progress, **scan_options)
     else:
         m = read(target)
-    return audit(m, max_distance=max_distance, split_column=split_column, decisions=decisions)
+        recorded = _grouped_with(read_sidecar(target))
+    chosen = {"max_distance": max_distance, "flips": flips}
+    chosen = {k: v if v is not None else recorded.get(k, _GROUP_DEFAULTS[k]) for k, v in chosen.items()}
+    return audit(m, split_column=split_column, decisions=decisions, **chosen)
+
+
+_GROUP_DEFAULTS = {"max_distance": defaults.MAX_DISTANCE, "flips": True}
+
+
+def _grouped_with(meta: dict) -> dict:
+    """The link options a manifest's sidecar records for its group stage (or its prepare run)."""
+    stages = meta.get("stages", {}) if isinstance(meta, dict) else {}
+    for stage in ("group", "prepare"):
+        recorded = stages.get(stage, {}).get("options", {})
+        if isinstance(recorded, dict) and any(k in recorded for k in _GROUP_DEFAULTS):
+            return {k: recorded[k] for k in _GROUP_DEFAULTS if k in recorded}
+    return {}
 
 
 def _is_part_folder(folder) -> bool:
@@ -234,7 +259,7 @@ def _split_column(manifest, split_column):
                          "(run labelprep split, or scan a ROOT/<train|val|test>/<label> folder)")
 
 
-def _leaking_pairs(frame, max_distance):
+def _leaking_pairs(frame, max_distance, flips):
     """Row pairs ``a < b`` in different splits: near (phash) or exact (sha256) copies.
 
     Returns a DataFrame with columns ``a``, ``b``, ``distance`` and ``exact``.
@@ -248,7 +273,7 @@ def _leaking_pairs(frame, max_distance):
     if "phash" in frame.columns:
         # the links group clusters by (one definition of a near-duplicate), so an audit of a
         # split made from those clusters finds no near pair across splits
-        a, b = near_links(frame, max_distance=max_distance)
+        a, b = near_links(frame, max_distance=max_distance, flips=flips)
         parts.append(pd.DataFrame({"a": a, "b": b, "distance": _whole_distance(frame, a, b)}))
     if "sha256" in frame.columns:
         sha = pd.DataFrame({"sha": frame["sha256"].fillna("").astype(str), "row": np.arange(len(frame))})

@@ -442,12 +442,16 @@ def _root_from(meta: dict):
 @click.option("--fail-on", type=click.Choice(["leaks", "never"]), default="never", show_default=True,
               help="Exit with status 1 when any near-duplicate or group crosses splits.")
 @click.option("--json", "json_path", type=click.Path(path_type=Path), help="Write the audit as JSON.")
-@options.BY_NAME["max_distance"].decorator()
+@click.option("--max-distance", type=click.IntRange(0, 64), default=None, metavar="BITS",
+              help="Hash radius of a near-duplicate (default: what the manifest was grouped with, else "
+                   f"{defaults.MAX_DISTANCE}).")
+@click.option("--flips/--no-flips", default=None,
+              help="Count mirrored copies (default: as the manifest was grouped, else yes).")
 @SCAN_OPTIONS
 @_decisions
 @_force
 @_quiet
-def audit(target, fail_on, json_path, max_distance, decisions, force, quiet, **scan_options):
+def audit(target, fail_on, json_path, max_distance, flips, decisions, force, quiet, **scan_options):
     """Leaks and class balance of an existing split.
 
     MANIFEST_OR_ROOT is a manifest with a split column, or a folder laid out as
@@ -458,8 +462,8 @@ def audit(target, fail_on, json_path, max_distance, decisions, force, quiet, **s
 
     # beside a manifest file its decisions.csv applies; a scanned folder has none unless given
     decided = _load_decisions(decisions, target.parent) if decisions is not None or not target.is_dir() else None
-    result = audit_path(target, max_distance=max_distance, progress=_progress(quiet), decisions=decided,
-                        **scan_options)
+    result = audit_path(target, max_distance=max_distance, flips=flips, progress=_progress(quiet),
+                        decisions=decided, **scan_options)
     if json_path is not None:
         import json
 

@@ -127,12 +127,13 @@ def sketch_pixels(cells):
     [200, 0]
     """
     out = np.zeros((len(cells), _THUMB, _THUMB), dtype=np.uint8)
-    for i, cell in enumerate(cells):
-        if cell:
-            raw = base64.b64decode(cell, validate=True)
-            if len(raw) != _THUMB * _THUMB:
-                raise ValueError(f"a sketch holds {_THUMB * _THUMB} bytes; got {len(raw)}")
-            out[i] = np.frombuffer(raw, dtype=np.uint8).reshape(_THUMB, _THUMB)
+    filled = [i for i, cell in enumerate(cells) if cell]
+    raws = [base64.b64decode(cells[i], validate=True) for i in filled]
+    wrong = next((raw for raw in raws if len(raw) != _THUMB * _THUMB), None)
+    if wrong is not None:
+        raise ValueError(f"a sketch holds {_THUMB * _THUMB} bytes; got {len(wrong)}")
+    if raws:
+        out[filled] = np.frombuffer(b"".join(raws), dtype=np.uint8).reshape(-1, _THUMB, _THUMB)
     return out
 
 
@@ -159,3 +160,69 @@ def _hex(blocks):
     flat = blocks.reshape(len(blocks), -1)
     bits = np.packbits(flat > np.median(flat, axis=1, keepdims=True), axis=1)
     return [row.tobytes().hex() for row in bits]
+
+
+SHIFTS = tuple((dy, dx) for dy in (-1, 0, 1) for dx in (-1, 0, 1) if (dy, dx) != (0, 0))
+"""The eight directions of :func:`shifted_phashes`."""
+
+
+def shifted_phashes(pixels, step):
+    """The whole-image hash of each sketch moved by ``step`` pixels in each of the 8 directions.
+
+    pHash moves by many bits when a picture is shifted by a few percent of its side, so a shifted
+    copy is no candidate for the hash search; these hashes make it one. The sketch is moved with
+    its edge repeated into the gap; only the 8x8 low frequencies are computed (two products per
+    direction instead of a whole DCT).
+
+    Parameters
+    ----------
+    pixels : numpy.ndarray
+        ``(n, 32, 32)`` sketches (:func:`sketch_pixels`).
+    step : int or array of int
+        Pixels to move by, for all sketches or one per sketch (1 to 8).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n, 8)`` uint64 hashes in the order of :data:`SHIFTS`, imagehash's bit order.
+
+    Examples
+    --------
+    >>> from PIL import Image
+    >>> fp = fingerprint(Image.linear_gradient("L").rotate(30))
+    >>> moved = shifted_phashes(sketch_pixels([fp["sketch"]]), 2)
+    >>> moved.shape, str(moved.dtype)
+    ((1, 8), 'uint64')
+    """
+    pixels = np.asarray(pixels, dtype=np.float32)
+    n = len(pixels)
+    steps = np.broadcast_to(np.asarray(step, dtype=np.int64), (n,))
+    if n and (steps.min() < 1 or steps.max() > 8):
+        raise ValueError(f"step must be between 1 and 8 pixels, got {int(steps.min())}..{int(steps.max())}")
+    basis = _DCT[:_BITS].astype(np.float32)
+    out = np.zeros((n, len(SHIFTS)), dtype=np.uint64)
+    for s in np.unique(steps):
+        rows = np.flatnonzero(steps == s)
+        k = len(rows)
+        moved = {d: basis @ _shift_matrix(d * s) for d in (-1, 0, 1)}
+        # one matrix product per direction over all sketches at once (as columns side by side)
+        columns = pixels[rows].transpose(1, 0, 2).reshape(_THUMB, k * _THUMB)
+        left = {dy: (moved[dy] @ columns).reshape(_BITS, k, _THUMB).transpose(1, 0, 2).reshape(k * _BITS, _THUMB)
+                for dy in (-1, 0, 1)}
+        blocks = np.stack([(left[dy] @ moved[dx].T).reshape(k, _BITS * _BITS) for dy, dx in SHIFTS], axis=1)
+        # the median rule of _hex (candidates need no bit-exact reference, so no zeroing of
+        # rounding noise as in _transform)
+        bits = blocks.reshape(k * len(SHIFTS), _BITS * _BITS)
+        middle = np.partition(bits, (_BITS * _BITS // 2 - 1, _BITS * _BITS // 2), axis=1)
+        median = middle[:, _BITS * _BITS // 2 - 1: _BITS * _BITS // 2 + 1].mean(axis=1, keepdims=True)
+        packed = np.packbits(bits > median, axis=1)
+        out[rows] = packed.view(">u8").astype(np.uint64).reshape(k, len(SHIFTS))
+    return out
+
+
+def _shift_matrix(offset):
+    """(32, 32) matrix moving a column vector by ``offset`` entries, the edge repeated."""
+    source = np.clip(np.arange(_THUMB) - offset, 0, _THUMB - 1)
+    matrix = np.zeros((_THUMB, _THUMB), dtype=np.float32)
+    matrix[np.arange(_THUMB), source] = 1.0
+    return matrix

@@ -73,13 +73,17 @@ _COLUMN_LIST = [
     Column("fault_detail", "str", "scan", "one line from the decoder explaining the fault"),
     Column("phash_c80", "str", "scan", "perceptual hash (as phash) of the centred box keeping 80% of each side; matches copies cropped 5-15% per side"),
     Column("phash_c70", "str", "scan", "perceptual hash (as phash) of the centred box keeping 70% of each side"),
-    Column("phash_mirror", "str", "scan", "perceptual hash of the left-right mirrored image; used by group --flips"),
+    Column("phash_mirror", "str", "scan", "perceptual hash of the left-right mirrored image; used by group (mirror matching, on unless --no-flips)"),
     Column("detail", "Float64", "scan", "share of the hash thumbnail's AC energy above the hashed frequencies; below 0.05 the image counts as low-detail"),
     Column("sketch", "str", "scan", "the 32x32 grayscale thumbnail behind phash, its 1,024 bytes in base64; compares two images on their pixels"),
     # grouping
     Column("bundle", "Int64", "group", "id of the rows that must share one split: near-duplicate clusters joined with user groups"),
     Column("mixed_labels", "boolean", "group", "the row's near-duplicate cluster holds more than one label (label-conflict unless kept)"),
     Column("keeper", "boolean", "group", "the one file kept per near-duplicate cluster (highest resolution, then largest file, then path); true for files with no copy"),
+    Column("linked_to", "str", "group", "the cluster member this file was verified against (its anchor, or the file it is byte-identical to); empty for an anchor or a file with no copy"),
+    Column("link_kind", "str", "group", "how linked_to was matched: exact (same bytes), near, mirror (left-right mirrored copy) or given (by another stage or a decision)"),
+    Column("link_likeness", "Float64", "group", "correlation of the two sketches after alignment (1 = identical); empty when not measured"),
+    Column("link_blemish", "Float64", "group", "largest local residual between the two aligned sketches, in standard deviations; a cluster's weakest link has the largest"),
     # splitting
     Column("fold", "Int64", "split", "cross-validation fold (0..K-1) when --folds K was asked; empty otherwise"),
     # decisions (labelprep.decisions): present only when a decisions file holds rows

@@ -71,6 +71,7 @@ class Option:
     recorded: bool = True
     record_if_set: bool = False
     short: str | None = None
+    negatable: bool = False  # a flag that is on by default: also --no-name to turn it off
     # the help a command of one stage shows instead (what the option does there)
     help_for: dict = field(default_factory=dict)
 
@@ -79,7 +80,8 @@ class Option:
         return "--" + self.name.replace("_", "-")
 
     def decorator(self, stages=()) -> Callable:
-        names = [self.flag] + ([self.short] if self.short else [])
+        flag = f"{self.flag}/--no-{self.flag[2:]}" if self.negatable else self.flag
+        names = [flag] + ([self.short] if self.short else [])
         kwargs = dict(self.click)
         if len(stages) == 1 and stages[0] in self.help_for:
             kwargs["help"] = self.help_for[stages[0]]
@@ -147,10 +149,11 @@ SPEC = (
         help="Hamming radius on the 64-bit perceptual hash for near-duplicates.")),
     Option("keep_conflicts", ("group",), False, dict(
         is_flag=True, help="Keep clusters that span labels in the split (default: leave them out).")),
-    Option("flips", ("group",), False, dict(
-        is_flag=True,
-        help="Also match left-right mirrored copies (off by default: some labels, such as "
-             "left/right signs, change when mirrored).")),
+    Option("flips", ("group",), True, dict(
+        is_flag=True, show_default=True,
+        help="Match left-right mirrored copies too (a mirrored copy across splits is a leak); "
+             "--no-flips for labels that change when mirrored, such as left/right signs."),
+        negatable=True),
     Option("ratios", ("split",), defaults.RATIOS, dict(
         callback=_ratios, metavar="TRAIN,VAL,TEST",
         help="train,val,test shares (two numbers: train,test).")),

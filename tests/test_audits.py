@@ -267,3 +267,15 @@ class TestAgreesWithGroup:
 
         result = self._prepare_then_audit(runner, demo_tree, tmp_path / "out", "--group-pattern", GROUP_PATTERN)
         assert result.exit_code == 0, result.output
+
+    def test_on_the_demo_grouped_without_mirrors_and_a_small_radius(self, runner, demo_tree, tmp_path):
+        """The audit takes the link options the manifest was grouped with from its sidecar, so
+        `prepare --no-flips --max-distance 4` is audited with the same links."""
+        from labelprep.demo import GROUP_PATTERN
+
+        out = tmp_path / "out"
+        result = self._prepare_then_audit(runner, demo_tree, out, "--group-pattern", GROUP_PATTERN,
+                                          "--no-flips", "--max-distance", "4")
+        assert result.exit_code == 0, result.output
+        assert audit_path(out / "manifest.csv")["max_distance"] == 4
+        assert audit_path(out / "manifest.csv", max_distance=6)["max_distance"] == 6

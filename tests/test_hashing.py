@@ -139,3 +139,22 @@ def test_sketch_is_the_thumbnail_the_phash_is_taken_from():
     assert not pixels[1].any()
     with pytest.raises(ValueError, match="1024 bytes"):
         sketch_pixels([fp["sketch"][:100]])
+
+
+def test_shifted_phashes_equal_imagehash_of_the_moved_sketch():
+    """Each shifted hash is imagehash.phash of the sketch moved by the step with its edge
+    repeated (reference: imagehash.phash on the moved 32x32 image, which it does not resize),
+    on scikit-image's camera and astronaut photos."""
+    import imagehash
+    import skimage.data
+
+    from labelprep.hashing import SHIFTS, fingerprint, shifted_phashes, sketch_pixels
+
+    for name in ("camera", "astronaut"):
+        pixels = sketch_pixels([fingerprint(Image.fromarray(getattr(skimage.data, name)()))["sketch"]])
+        for step in (2, 4):
+            ours = shifted_phashes(pixels, step)[0]
+            for (dy, dx), value in zip(SHIFTS, ours):
+                padded = np.pad(pixels[0], step, mode="edge")
+                moved = padded[step - dy * step: step - dy * step + 32, step - dx * step: step - dx * step + 32]
+                assert f"{int(value):016x}" == str(imagehash.phash(Image.fromarray(moved))), (name, step, dy, dx)

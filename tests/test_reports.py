@@ -109,6 +109,35 @@ def parse_page(text: str) -> _Page:
 
 
 class TestSummary:
+    def test_weakest_link_of_each_cluster(self):
+        """Two clusters of scikit-image's camera and coffee photos with a JPEG and a brightened
+        copy each: every cluster's weakest link is its member with the largest blemish, named
+        with the anchor it was verified against, in the summary and on the terminal."""
+        import io
+
+        import skimage.data
+        from PIL import Image, ImageEnhance
+
+        from labelprep.clusters import group
+        from labelprep.hashing import fingerprint
+
+        rows = []
+        for name in ("camera", "coffee"):
+            img = Image.fromarray(getattr(skimage.data, name)())
+            buf = io.BytesIO()
+            img.convert("RGB").save(buf, "JPEG", quality=60)
+            for kind, im in (("orig", img), ("jpeg", Image.open(buf)), ("bright", ImageEnhance.Brightness(img).enhance(1.25))):
+                rows.append({"path": f"{name}-{kind}.png", "label": name, "sha256": f"{name}{kind}", **fingerprint(im)})
+        m = group(pd.DataFrame(rows))
+        weakest = reports.report(m)["near_duplicates"]["weakest_links"]
+        assert len(weakest) == 2
+        for w in weakest:
+            members = m[m["dup_group"] == w["cluster"]]
+            worst = members.loc[members["link_blemish"].astype(float).idxmax()]
+            assert (w["path"], w["linked_to"]) == (worst["path"], worst["linked_to"])
+            assert w["blemish"] == pytest.approx(float(worst["link_blemish"]), abs=1e-4)
+        assert f"Weakest link: {weakest[0]['path']} to {weakest[0]['linked_to']}" in reports.terminal_table(reports.report(m))
+
     def test_keys_and_counts(self, dataset):
         """Stable keys; totals and issue counts equal a direct count of the manifest."""
         _, m = dataset
@@ -120,6 +149,8 @@ class TestSummary:
         by_code = {i["code"]: i["rows"] for i in s["issues"]}
         assert by_code == {"too-small": 1, "near-copy": 6, "label-conflict": 2}
         assert [i["severity"] for i in s["issues"]] == ["error", "warning", "error"]
+        # this manifest's clusters were written by hand, with no link evidence to show
+        assert s["near_duplicates"].pop("weakest_links") == []
         assert s["near_duplicates"] == {"clusters": 3, "files": 6, "label_conflicts": 1, "across_splits": 1}
         assert s["seed"] == 7 and s["options"] == META["stages"]
         assert s["balance"]["splits"]["train"]["counts"] == {"cat": 10, "mug": 4, "person": 1}

@@ -213,6 +213,10 @@ class TestApi:
         best = near["evidence"][0]
         assert best["bits"] <= 8 and best["what"].endswith(("whole image", "centre 80%", "centre 70%"))
         assert all(not m["evidence"] for m in by_path.values() if m["keeper"])
+        # the group stage's own verification of the link, as the manifest's link columns hold it
+        assert near["link"]["kind"] in ("near", "mirror") and near["link"]["to"] in ("cat/c.jpg", "dog/c.jpg")
+        assert 0 < float(near["link"]["likeness"]) <= 1 and float(near["link"]["blemish"]) >= 0
+        assert copy["link"]["kind"] == "exact"
 
     def test_unknown_decisions_are_listed(self, served):
         served.decisions_path.write_text("path,action,value,note\nghost.jpg,drop,,\n")

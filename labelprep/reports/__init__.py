@@ -134,6 +134,11 @@ def _complete(manifest):
                       else pd.array([pd.NA] * len(m), dtype="Int64"))
     if "keeper" not in m.columns:
         m["keeper"] = pd.array([pd.NA] * len(m), dtype="boolean")
+    for name in ("linked_to", "link_kind"):
+        m[name] = m[name].fillna("").astype(str) if name in m.columns else ""
+    for name in ("link_likeness", "link_blemish"):
+        m[name] = (pd.to_numeric(m[name]).astype("Float64") if name in m.columns
+                   else pd.array([pd.NA] * len(m), dtype="Float64"))
     return m.sort_values("path", kind="stable").reset_index(drop=True)
 
 
@@ -198,18 +203,27 @@ def cluster_table(m):
     """The near-duplicate clusters of a completed manifest, ranked most urgent first.
 
     Returns a DataFrame indexed by ``dup_group`` with ``size``, ``conflict`` (its labels
-    disagree) and ``leak`` (its files sit in more than one split). Conflicts come first, then
-    leaks, then larger clusters, then lower ids.
+    disagree), ``leak`` (its files sit in more than one split) and its weakest link (the member
+    whose link to the anchor has the largest ``link_blemish``: ``weakest_path``,
+    ``weakest_to``, ``weakest_kind``, ``weakest_likeness``, ``weakest_blemish``; empty for a
+    cluster of byte-identical files only). Conflicts come first, then leaks, then larger
+    clusters, then lower ids.
     """
     import pandas as pd
 
     d = m[m["dup_group"].notna()]
     size = d.groupby("dup_group").size()
     assigned = d[d["split"] != ""]
+    linked = d[d["link_kind"] != ""].assign(_weak=lambda x: x["link_blemish"].astype(float).fillna(-1.0))
+    weakest = (linked.sort_values(["dup_group", "_weak", "path"], ascending=[True, False, True], kind="stable")
+               .drop_duplicates("dup_group").set_index("dup_group").reindex(size.index))
     table = pd.DataFrame({
         "size": size,
         "conflict": d.groupby("dup_group")["label"].nunique() > 1,
         "leak": assigned.groupby("dup_group")["split"].nunique().reindex(size.index, fill_value=0) > 1,
+        "weakest_path": weakest["path"].fillna(""), "weakest_to": weakest["linked_to"].fillna(""),
+        "weakest_kind": weakest["link_kind"].fillna(""),
+        "weakest_likeness": weakest["link_likeness"], "weakest_blemish": weakest["link_blemish"],
     })
     table.index = table.index.astype("int64")
     rank = table.assign(_calm=~table["conflict"], _kept=~table["leak"], _small=-table["size"],
@@ -218,14 +232,34 @@ def cluster_table(m):
     return table.loc[order]
 
 
+WEAKEST_LISTED = 50
+"""Clusters listed in ``near_duplicates.weakest_links`` of the summary: the least certain first."""
+
+
 def _near_duplicates(m) -> dict:
     table = cluster_table(m)
+    blemish = table["weakest_blemish"].astype(float)
+    least_certain = table.assign(_b=blemish.fillna(-1.0), _id=table.index)[table["weakest_kind"] != ""].sort_values(
+        ["_b", "_id"], ascending=[False, True], kind="stable").head(WEAKEST_LISTED)
     return {
         "clusters": len(table),
         "files": int(table["size"].sum()),
         "label_conflicts": int(table["conflict"].sum()),
         "across_splits": int(table["leak"].sum()),
+        "weakest_links": [_weakest(gid, row) for gid, row in least_certain.iterrows()],
     }
+
+
+def _weakest(gid, row) -> dict:
+    """One cluster's weakest link as JSON-able values."""
+    import pandas as pd
+
+    def number(value):
+        return None if pd.isna(value) else round(float(value), 4)
+
+    return {"cluster": int(gid), "size": int(row["size"]), "path": row["weakest_path"],
+            "linked_to": row["weakest_to"], "kind": row["weakest_kind"],
+            "likeness": number(row["weakest_likeness"]), "blemish": number(row["weakest_blemish"])}
 
 
 def _split_diagnosis(m, meta: dict) -> dict:

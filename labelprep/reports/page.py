@@ -13,7 +13,7 @@ import io
 from pathlib import Path
 
 from .. import codes
-from . import cluster_table
+from . import _weakest, cluster_table
 from .text import UNASSIGNED, _balance_rows, _class_rows, _warning_lines, flatten, plural, source_rows
 
 TEMPLATES = Path(__file__).parent / "templates"
@@ -126,7 +126,7 @@ def _clusters(m, root) -> tuple[list, int, int]:
             files.append({"path": path, "label": label, "split": split or "left out", "keeper": i == 0,
                           "distance": hamming(keeper_hash, phash), "thumb": thumb, "drawn": draw})
         out.append({"id": int(gid), "size": int(size), "conflict": bool(conflict), "leak": bool(leak),
-                    "files": files})
+                    "files": files, "weakest": _weakest(gid, shown.loc[gid])})
     return out, len(table), unthumbed
 
 

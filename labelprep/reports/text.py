@@ -105,8 +105,14 @@ def _duplicates_line(summary: dict) -> str:
     d = summary["near_duplicates"]
     if not d["clusters"]:
         return "No near-duplicate clusters."
-    return (f"{plural(d['clusters'], 'near-duplicate cluster')} hold {d['files']} files; "
+    line = (f"{plural(d['clusters'], 'near-duplicate cluster')} hold {d['files']} files; "
             f"{d['label_conflicts']} mix labels, {d['across_splits']} straddle splits.")
+    weakest = [w for w in d.get("weakest_links", []) if w["blemish"] is not None]
+    if weakest:
+        w = weakest[0]
+        line += (f" Weakest link: {w['path']} to {w['linked_to']} (cluster {w['cluster']}, {w['kind']}, "
+                 f"blemish {w['blemish']:.3f}).")
+    return line
 
 
 def _warning_lines(summary: dict) -> list[str]:

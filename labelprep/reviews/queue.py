@@ -115,6 +115,10 @@ class Queue:
         facts["keeper"] = facts.pop("keeper_cell") == "True"
         facts["distance"] = hamming(keeper_hash, self.cell("phash", row)) if keeper_hash is not None else None
         facts["evidence"] = self.evidence(keeper_row, row) if keeper_row is not None else []
+        kind = self.cell("link_kind", row)  # the group stage's pixel verification, when it ran
+        facts["link"] = {"kind": kind, "to": self.cell("linked_to", row),
+                         "likeness": self.cell("link_likeness", row),
+                         "blemish": self.cell("link_blemish", row)} if kind else None
         size = [self.cell(c, row) for c in ("width", "height")]
         facts["size"] = "x".join(size) if all(size) else ""
         return {"row": row, "path": path, **facts, "decisions": by_path.get(path, [])}

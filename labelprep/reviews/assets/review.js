@@ -93,6 +93,10 @@
         fig.append(el("figcaption", {}, el("span", { class: "path" }, m.path),
           el("span", {}, `${label} · ${m.split || "left out"}${m.size ? " · " + m.size : ""}`),
           evidence ? el("span", { class: "evidence", title: m.evidence.map((e) => `${e.what}: ${e.bits} bits`).join("; ") }, evidence) : "",
+          m.link ? el("span", { class: "evidence link", title: "how the group stage verified this file against " + m.link.to },
+            `${m.link.kind} link to ${m.link.to}` +
+            (m.link.likeness ? ` · likeness ${Number(m.link.likeness).toFixed(3)}` : "") +
+            (m.link.blemish ? ` · blemish ${Number(m.link.blemish).toFixed(2)}` : "")) : "",
           issues ? el("span", { class: "issues" }, issues) : "",
           m.muted ? el("span", { class: "muted" }, `muted: ${m.muted.split(";").join(", ")}`) : "",
           m.likely_label ? el("span", { class: "issues" }, `features suggest ${m.likely_label}`) : "",
