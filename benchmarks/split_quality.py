@@ -33,7 +33,13 @@ With ``--scale N`` it also splits a synthetic manifest of ``N`` rows (100 classe
 shares, ``N / 5`` groups of mixed classes, as in the million-row pipeline benchmark) and prints
 the time and the same figures; the target there is well under a minute for 1,000,000 rows.
 
-Run: ``python benchmarks/split_quality.py [--seeds 10] [--files [--file-seeds 3]] [--scale 1000000]``.
+With ``--folds K,K,...`` it times ``split(folds=K)`` on one fixed manifest (200 files of 4
+classes, one unit each, as in issue 18's report) for each K, and prints the seconds, the seconds
+per fold, the log-log growth exponent between the smallest and the largest K (target: at most 1,
+no worse than linear in K) and how far the fold sizes are from even.
+
+Run: ``python benchmarks/split_quality.py [--seeds 10] [--files [--file-seeds 3]] [--scale 1000000]
+[--folds 5,20,80,180]``.
 """
 
 from __future__ import annotations
@@ -207,6 +213,29 @@ def scale(n: int) -> None:
           f"share dev {figures['share_dev']:.5f}, unassigned {figures['unassigned']:.4f}")
 
 
+def fold_scaling(ks: list[int], repeat: int = 2) -> None:
+    """Seconds of ``split(folds=K)`` on one fixed 200-file manifest for each K (best of ``repeat``)."""
+    from labelprep.splits import split
+
+    rows = pd.DataFrame({"path": [f"{i:04d}.png" for i in range(200)],
+                         "label": [f"c{i % 4}" for i in range(200)], "issues": ""})
+    times = []
+    for k in ks:
+        best = np.inf
+        for _ in range(repeat):
+            start = time.perf_counter()
+            out = split(rows, folds=k, seed=0)
+            best = min(best, time.perf_counter() - start)
+        times.append(best)
+        sizes = out["fold"].value_counts().reindex(range(k), fill_value=0)
+        train = int((out["split"] == "train").sum())
+        print(f"folds {k:>4}: {best:7.2f} s, {best / k * 1000:8.1f} ms per fold; fold sizes "
+              f"{sizes.min()}-{sizes.max()} (even: {train / k:.2f})")
+    exponent = np.log(times[-1] / times[0]) / np.log(ks[-1] / ks[0])
+    print(f"growth exponent of time in K from {ks[0]} to {ks[-1]} folds: {exponent:.2f} "
+          f"({'target met' if exponent <= 1 else 'TARGET MISSED'}: at most 1, linear)")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, default=10)
@@ -215,7 +244,12 @@ def main() -> None:
     parser.add_argument("--file-seeds", type=int, default=3)
     parser.add_argument("--scale", type=int, default=0, metavar="N",
                         help="also time a synthetic manifest of N rows")
+    parser.add_argument("--folds", default="", metavar="K,K,...",
+                        help="only time split --folds K on a fixed 200-file manifest, each K")
     args = parser.parse_args()
+    if args.folds:
+        fold_scaling([int(k) for k in args.folds.split(",")])
+        return
     methods = {"labelprep": labelprep_split, "random groups": random_groups,
                "StratifiedGroupKFold": stratified_group_kfold}
     results = {name: [] for name in methods}

@@ -15,6 +15,9 @@ from .errors import ParameterError
 from .validation import check_manifest
 
 SPLIT_ORDER = ("train", "val", "test")
+# how the audit's header names the split it looked at
+_SPLIT_SOURCES = {"split": "the split labelprep made (split column)",
+                  "given_split": "the split given by the train/val/test folders"}
 _HEX_DIGITS = frozenset("0123456789abcdef")
 
 
@@ -45,7 +48,8 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, flips=True, split_col
     dict
         JSON-able:
 
-        - ``split_column``, ``max_distance``; ``rows``: rows in a split.
+        - ``split_column``, ``max_distance``; ``rows``: rows in a split; ``groups_known``:
+          whether any row has a user group (without one, group leaks cannot be checked).
         - ``near_leaks``: one dict per pair of files in different splits that are byte-identical
           or near-duplicates: ``path_a``, ``path_b`` (``path_a`` sorts first), ``label_a``,
           ``label_b``, ``split_a``, ``split_b``, ``distance`` (bits between the whole-image
@@ -100,7 +104,9 @@ def audit(manifest, *, max_distance=defaults.MAX_DISTANCE, flips=True, split_col
                                                 split[b], pairs["distance"], pairs["exact"])
     ]
     in_groups = {p for g in groups for paths in g["paths"].values() for p in paths}
+    known = "group" in frame.columns and bool((frame["group"].fillna("").astype(str) != "").any())
     return {"split_column": column, "max_distance": max_distance, "rows": int(len(frame)),
+            "groups_known": known,
             "near_leaks": near, "group_leaks": groups,
             "leaking_files": len(set(path[a]) | set(path[b]) | in_groups), "separated": int(apart.sum()),
             "balance": by_split(manifest, split_column=column)}
@@ -182,13 +188,15 @@ def render(result: dict, *, limit: int = 20) -> str:
     >>> print(render(audit(m)).splitlines()[1])
     near-duplicate pairs across splits: 1 (1 byte-identical), radius 8 bits
     """
+    from .advice import audit_advice
+
     if isinstance(limit, bool) or not isinstance(limit, int):
         raise TypeError(f"limit must be an int, got {type(limit).__name__}")
     if limit < 0:
         raise ParameterError(f"limit must be 0 or more, got limit={limit!r}")
     near, groups = result["near_leaks"], result["group_leaks"]
-    lines = [f"audit of column {result['split_column']!r}: {result['rows']} files in a split, "
-             f"{result['leaking_files']} of them leaking",
+    lines = [f"audit of {_SPLIT_SOURCES.get(result['split_column'], 'the column ' + result['split_column'])}: "
+             f"{result['rows']} files in a split, {result['leaking_files']} of them leaking",
              f"near-duplicate pairs across splits: {len(near)} "
              f"({sum(p['exact'] for p in near)} byte-identical), radius {result['max_distance']} bits"]
     if result.get("separated"):
@@ -198,12 +206,16 @@ def render(result: dict, *, limit: int = 20) -> str:
         lines.append(f"  {kind:>10}  {p['split_a']}:{p['path_a']} [{p['label_a']}]"
                      f"  ~  {p['split_b']}:{p['path_b']} [{p['label_b']}]")
     lines += _more(len(near), limit)
-    lines.append(f"groups across splits: {len(groups)}")
+    if result.get("groups_known", True):
+        lines.append(f"groups across splits: {len(groups)}")
+    else:
+        lines.append("groups across splits: no groups known (no row has a group)")
     for g in groups[:limit]:
         spread = ", ".join(f"{name} {count}" for name, count in g["splits"].items())
         lines.append(f"  {g['group']}: {spread}")
     lines += _more(len(groups), limit)
     lines += _balance_lines(result["balance"])
+    lines += audit_advice(result)
     return "\n".join(lines)
 
 

@@ -144,7 +144,8 @@ RULES: dict[str, _Rule] = {
     "no-decoder": _fault_rule("no-decoder"),
     "unsafe-member": _fault_rule("unsafe-member"),
     "too-small": _Rule(_too_small, lambda row, limits:
-                       f"{_size(row)}, shorter side under {limits['min_side']} px"),
+                       f"{_size(row)}, shorter side under {limits['min_side']} px; "
+                       f"a lower --min-side keeps it"),
     "no-label": _Rule(_no_label, lambda row, limits: "no class label: outside every class folder and label table row"),
     "wrong-extension": _Rule(_wrong_extension, _why_wrong_extension),
     "extreme-aspect": _Rule(_extreme_aspect, _why_extreme_aspect),
@@ -262,6 +263,8 @@ def summary_lines(manifest, *, examples: int = 3, limits: dict | None = None) ->
     ``limits`` are those the manifest was checked with (:func:`limits_of` of the check's
     options); the defaults when not given.
     """
+    from .advice import copy_match
+
     limits = limits or limits_of()
     tally = codes.counts(manifest["issues"])
     if not tally:
@@ -273,7 +276,12 @@ def summary_lines(manifest, *, examples: int = 3, limits: dict | None = None) ->
         lines.append(f"{code:<16} {info.severity if info else '?':<8} {n:>6} file{'s' if n != 1 else ''}")
         hit = manifest[cells.map(lambda cs: code in cs)]
         for _, row in hit.head(examples).iterrows():
-            why = reason(row, code, limits=limits) if code in RULES else (info.meaning if info else "")
+            if code in RULES:
+                why = reason(row, code, limits=limits)
+            elif info is not None and info.stage == "group":
+                why = copy_match(manifest, row, code)  # names the file it matches
+            else:
+                why = info.meaning if info else ""
             lines.append(f"    {row['path']}: {why}")
         if n > examples:
             lines.append(f"    ... and {n - examples} more")

@@ -25,6 +25,14 @@ class _Failure(click.ClickException):
         self.exit_code = exit_code
 
 
+class _Stopped(BaseException):
+    """A signal ended the command (raised where it arrived, so every finally block runs)."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
 # sysexits.h EX_SOFTWARE, "an internal software error has been detected": neither a failed gate
 # (1) nor bad usage or input (2)
 BUG_STATUS = 70
@@ -39,7 +47,12 @@ def _bug_line(exc: Exception) -> str:
 
 
 def _stop(signum, frame):
-    raise SystemExit(128 + signum)  # the shell's status for death by that signal
+    raise _Stopped(signum)
+
+
+# what an interrupted command says; outputs are atomic and a scan keeps its journal
+_RESUME = ("stopped by {what}: nothing half-written was left; run the same command again to "
+           "resume (files already decoded are not decoded again)")
 
 
 class _Group(click.Group):
@@ -54,7 +67,12 @@ class _Group(click.Group):
         try:
             return super().invoke(ctx)
         except LabelprepError as exc:
-            raise _Failure(str(exc), exc.exit_code) from exc
+            raise _Failure(_flag_words(str(exc), ctx), exc.exit_code) from exc
+        except (KeyboardInterrupt, _Stopped) as exc:
+            # the shell's status for death by a signal is 128 + its number (130 Ctrl-C, 143 kill)
+            signum = getattr(exc, "signum", signal.SIGINT)
+            click.echo(_RESUME.format(what="Ctrl-C" if signum == signal.SIGINT else "SIGTERM"), err=True)
+            raise SystemExit(128 + signum) from None
         except (click.ClickException, click.exceptions.Exit, click.Abort):
             raise
         except Exception as exc:
@@ -64,6 +82,29 @@ class _Group(click.Group):
         finally:
             if main_thread:
                 signal.signal(signal.SIGTERM, previous)
+
+
+def _flag_words(message: str, ctx) -> str:
+    """``message`` with the library's parameter names written as the options the user typed:
+    ``seed must be 0 or more, got seed=-5`` -> ``--seed must be 0 or more, got --seed -5``."""
+    import re
+
+    sub = ctx.invoked_subcommand and ctx.command.get_command(ctx, ctx.invoked_subcommand)
+    flags = {param.name: max(param.opts, key=len) for param in getattr(sub, "params", [])
+             if isinstance(param, click.Option)}
+    if not flags:
+        return message
+
+    def assigned(match):  # name=value anywhere
+        name, value = match.group(1), match.group(2).strip("'\"")
+        return f"{flags[name]} {value}" if name in flags else match.group(0)
+
+    def leading(match):  # a name opening the message or a clause: "seed must be ..."
+        name = match.group(2)
+        return match.group(1) + flags[name] if name in flags else match.group(0)
+
+    message = re.sub(r"(?<![\w\-./'])([a-z][a-z_]*)=('[^']*'|\"[^\"]*\"|[^\s,;)]+)", assigned, message)
+    return re.sub(r"(^|; )([a-z][a-z_]*)(?= )", leading, message)
 
 
 _existing_dir = click.Path(exists=True, file_okay=False, dir_okay=True, path_type=Path)
@@ -90,12 +131,14 @@ SHORTFALL = "shortfall"
 _SHORTFALL_HELP = (f"'shortfall' exits with status 1 when the split misses a ratio by more than "
                    f"{defaults.SPLIT_TOLERANCE:.0%} of the files or leaves a class out of a split; "
                    "the warning names the cause.")
-_fail_on_split = click.option("--fail-on", type=click.Choice([SHORTFALL, "never"]), default="never",
-                              show_default=True, help=_SHORTFALL_HELP)
+_EMPTY_HELP = "'empty' exits with status 1 when a split or a class ends up with no file. "
+_fail_on_split = click.option("--fail-on", type=click.Choice([SHORTFALL, "empty", "never"]), default="never",
+                              show_default=True,
+                              help=_SHORTFALL_HELP + " " + _EMPTY_HELP + "'shortfall' includes it.")
 _fail_on_prepare = click.option(
-    "--fail-on", type=click.Choice(["error", "warning", SHORTFALL, "never"]), default="never",
-    show_default=True, help="Exit with status 1 when any file has an issue of this severity or "
-                            "worse. " + _SHORTFALL_HELP)
+    "--fail-on", type=click.Choice(["empty", "error", "warning", SHORTFALL, "never"]), default="never",
+    show_default=True, help=_EMPTY_HELP + "'error' and 'warning' also exit 1 when any file has an "
+                            "issue of this severity or worse. " + _SHORTFALL_HELP)
 
 
 _decisions = click.option(
@@ -190,16 +233,15 @@ def scan(roots, output, partitions, force, quiet, **chosen):
     and the source column says it. A rescan decodes only new and changed files (by size and
     modification time); an interrupted scan resumes from the journal it keeps beside MANIFEST.
     """
+    from .advice import scan_notes
     from .scanner import scan_to
 
     root = roots[0] if len(roots) == 1 else list(roots)
     m, facts = scan_to(root, output, partitions=partitions, force=force, progress=_progress(quiet), **chosen)
     _say(quiet, f"{len(m)} files indexed ({facts.get('probed', 0)} decoded, "
                 f"{facts.get('reused', 0)} unchanged), layout {_layouts(facts.get('layout'))} -> {output}")
-    if facts.get("skipped_junk"):
-        click.echo(f"skipped {facts['skipped_junk']} hidden or system files "
-                   f"(e.g. {', '.join(facts['skipped_examples'][:3])}); --include-hidden indexes them",
-                   err=True)
+    for line in scan_notes(facts):
+        click.echo(line, err=True)
 
 
 def _layouts(chosen) -> str:
@@ -215,14 +257,21 @@ def _print_issues(m, quiet: bool, checked: dict, examples: int = 3):
         _say(quiet, line)
 
 
-def _gate(m, fail_on: str):
+def _gate(m, fail_on: str, empty=()):
     from .codes import gate
     from .errors import GateFailed
 
-    failing = gate(m["issues"], fail_on)
+    failing = gate(m["issues"], "never" if fail_on == "empty" else fail_on)
     if failing:
         listed = ", ".join(f"{c} ({n})" for c, n in failing.items())
         raise GateFailed(f"--fail-on {fail_on}: {listed}")
+    if empty and fail_on != "never":
+        raise GateFailed(f"--fail-on {fail_on}: {empty[0]}")
+
+
+def _warn(lines):
+    for line in lines:
+        click.echo(line if line.startswith(("warning: ", "note: ")) else f"warning: {line}", err=True)
 
 
 @main.command()
@@ -317,7 +366,8 @@ def split(manifest_path, fail_on, decisions, force, quiet, **chosen):
 
     Two ratios mean train,test. With --folds K the split holds train and test and every train
     file gets a fold 0..K-1. With --keep-from, files found in OLD_MANIFEST (by sha256, then
-    path) keep their split and only new files are placed. When the bundles (clusters joined
+    path) keep their split and only new files are placed. A manifest of a train/val/test folder
+    tree keeps the split of its folders unless --resplit. When the bundles (clusters joined
     with groups) make a ratio or a class unreachable, it says why and which files bridge them.
     The decisions file's drop, relabel and keep rows are honoured; its separate and join rows
     act in group.
@@ -341,22 +391,43 @@ def split(manifest_path, fail_on, decisions, force, quiet, **chosen):
     _write_back(m, manifest_path, "split",
                 {**options.record(chosen, "split"), "decisions": digest_of(decided)}, force)
     _tell_decisions(decision_findings(m, decided))
-    summary = split_summary(m, keep_from=old)
+    summary = split_summary(m)
     sizes = [f"{name}: {count}" for name, count in summary["splits"].items()]
     sizes += [f"fold {k}: {count}" for k, count in summary["folds"].items()]
     _say(quiet, "  ".join(sizes + [f"left out: {summary['left_out']}"]))
-    if old is not None:
-        _say(quiet, f"kept {summary['kept']} files where they were, placed {summary['placed']} new, "
-                    f"moved {summary['moved']}, dropped {summary['dropped']} (now with an error)")
+    empty = _print_split_notes(m, old, quiet, ratios=chosen["ratios"], folds=chosen["folds"],
+                               resplit=chosen["resplit"])
     findings = diagnose_split(m, ratios=chosen["ratios"], folds=chosen["folds"])
     for line in warning_lines(findings):
         _say(quiet, line, err=True)
-    _gate_split(findings, fail_on)
+    _gate_split(findings, fail_on, empty)
 
 
-def _gate_split(findings, fail_on: str):
+def _print_split_notes(m, old, quiet: bool, *, ratios, folds, resplit=False) -> list:
+    """What was kept of the earlier manifest ``old`` (or of the given split, unless ``resplit``),
+    then warnings for empty splits and classes and for thin folds; returns the empty-split
+    warnings. (Classes missing from a split are told by the split diagnosis.)"""
+    from .advice import empty_parts, fold_warnings, keep_lines
+    from .splits import given_assignment, split_summary
+
+    given = given_assignment(m) if old is None and not resplit else None
+    summary = split_summary(m, keep_from=old if given is None else given)
+    if "kept" in summary:
+        lines = keep_lines(summary, m)
+        if given is not None:
+            lines[0] = "kept the split of the train/val/test folders (--resplit splits anew): " + lines[0]
+        _say(quiet, lines[0])
+        _warn(lines[1:])
+    empty = empty_parts(m, ratios=ratios, folds=folds)
+    _warn(empty + fold_warnings(summary, folds))
+    return empty
+
+
+def _gate_split(findings, fail_on: str, empty=()):
     from .errors import GateFailed
 
+    if fail_on in (SHORTFALL, "empty") and empty:
+        raise GateFailed(f"--fail-on {fail_on}: {empty[0]}")
     if fail_on == SHORTFALL and findings is not None and not findings["reached"]:
         raise GateFailed(f"--fail-on {SHORTFALL}: the split misses its targets "
                          f"(cause: {findings['cause']})")
@@ -450,18 +521,19 @@ def audit(target, fail_on, json_path, max_distance, flips, decisions, force, qui
 @_quiet
 def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
     """Lay out DEST/<split>/<label>/<file> and DEST/<split>.csv for any training framework."""
-    from .errors import InputError
     from .exports import export as run
-    from .manifest import read_sidecar
 
-    root = root or _root_from(read_sidecar(manifest_path))
-    if root is None:
-        raise InputError(f"cannot tell which folder {manifest_path}'s paths are relative to; pass --root")
-    written = run(_read(manifest_path), dest, root=root, mode=mode, force=force,
+    # given the path, export reads the manifest and finds the root in its sidecar
+    written = run(manifest_path, dest, root=root, mode=mode, force=force,
                   strip_metadata=strip_metadata, progress=_progress(quiet))
     methods = written["method"].value_counts()  # a hardlink falls back to a copy across filesystems
     _say(quiet, f"{len(written)} files placed under {dest}: "
                 + ", ".join(f"{n} {method}" for method, n in methods.items()))
+    classes = set(written["label"])
+    for name, rows in written.groupby("split", sort=False):
+        if set(rows["label"]) != classes:
+            _warn([f"{name} has no folder for {', '.join(sorted(classes - set(rows['label'])))}: read "
+                   f"every split with the class list {dest / 'classes.txt'} so the indices match"])
 
 
 @main.command()
@@ -476,21 +548,27 @@ def export(manifest_path, dest, mode, strip_metadata, root, force, quiet):
 def prepare(roots, out, fail_on, quiet, **chosen):
     """Scan, check, group, vet, split and report each ROOT in one go, into DIR.
 
-    A ROOT is a folder or an archive; with several, each is a source (see scan).
+    A ROOT is a folder or an archive; with several, each is a source (see scan). Nothing in DIR
+    is indexed, nor a label table stored inside ROOT. A tree of train/val/test folders keeps its
+    split unless --resplit.
     """
     from .pipeline import prepare as run
 
     root = roots[0] if len(roots) == 1 else list(roots)
     m, summary = run(root, out, progress=_progress(quiet), **chosen)
-    _print_outcome(m, summary, out, quiet, options.for_stage("check", chosen))
+    empty = _print_outcome(m, summary, out, quiet, options.for_stage("check", chosen), chosen)
     _tell_decisions(summary["decisions"])
     if fail_on == SHORTFALL:
-        _gate_split(summary["split_diagnosis"], fail_on)
+        _gate_split(summary["split_diagnosis"], fail_on, empty)
     else:
-        _gate(m, fail_on)
+        _gate(m, fail_on, empty)
 
 
-def _print_outcome(m, summary, out: Path, quiet: bool, checked: dict):
+def _print_outcome(m, summary, out: Path, quiet: bool, checked: dict, chosen=None) -> list:
+    """The tables, issues and notes of a prepare run (``chosen``: its options, None for the
+    demo's); returns the empty-split warnings."""
+    from .advice import scan_notes
+    from .manifest import read_sidecar
     from .reports import terminal_table
 
     # the issues are listed once, with their counts and first files, after the tables
@@ -498,6 +576,13 @@ def _print_outcome(m, summary, out: Path, quiet: bool, checked: dict):
     _say(quiet, "\nissues, with the first three files each (the manifest lists them all):")
     _print_issues(m, quiet, checked)
     _say(quiet, f"\nwrote {out / 'manifest.csv'}, {out / 'report.json'}, {out / 'report.html'}")
+    for line in scan_notes(read_sidecar(out / "manifest.csv")["stages"]["prepare"].get("scan", {})):
+        click.echo(line, err=True)
+    chosen = chosen or {}
+    keep = chosen.get("keep_from")
+    old = _read(keep) if keep is not None else None
+    return _print_split_notes(m, old, quiet, ratios=chosen.get("ratios"), folds=chosen.get("folds"),
+                              resplit=chosen.get("resplit", False))
 
 
 @main.command()

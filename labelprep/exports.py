@@ -1,6 +1,12 @@
 """Export a split manifest as class-per-folder trees: ``DEST/<split>/<label>/<file>`` plus lists.
 
-Training frameworks read this layout directly (one folder per class under each split). Every file
+Training frameworks read this layout directly (one folder per class under each split). A
+folder-per-class loader numbers the classes by the folders it finds (torchvision's ``ImageFolder``
+sorts the folder names and refuses an empty class folder, so empty folders are no remedy), and a
+class with too few files is missing from some split: ``DEST/classes.txt`` lists every class
+folder once, in that sorted order, so that each split can be read with the same class index
+(``class_names=`` in Keras' ``image_dataset_from_directory``, ``find_classes`` in torchvision).
+Every file
 is checked against the manifest's ``sha256`` before it is placed, so the export holds exactly the
 bytes the split was computed on. Sources are only ever read; outputs appear under their final name
 only once verified (written to a temporary name and renamed).
@@ -22,6 +28,7 @@ from .errors import InputError, OutputExistsError, ParameterError
 from .validation import check_manifest
 
 MODES = ("hardlink", "symlink", "copy")
+CLASS_LIST = "classes.txt"
 SPLIT_ORDER = ("train", "val", "test")
 RESULT_COLUMNS = ("split", "label", "target", "path", "method", "renamed", "gps_removed", "bytes", "sha256")
 _CHUNK = 1 << 20
@@ -32,19 +39,21 @@ _XMP_GPS = b"exif:GPS"
 _VP8X_XMP_FLAG = 0x04  # "X" bit of the VP8X flags byte (RFC 9649, section 2.7)
 
 
-def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata=False, progress=None):
+def export(manifest, dest, *, root=None, mode="hardlink", force=False, strip_metadata=False, progress=None):
     """Write every file that is in a split to ``dest/<split>/<label>/<name>``, with per-split lists.
 
     Parameters
     ----------
-    manifest : pandas.DataFrame
+    manifest : pandas.DataFrame, str or Path
         Needs ``path``, ``label``, ``split`` and ``sha256``. Rows whose split is ``""`` are not
-        exported.
+        exported. A path is read with :func:`labelprep.read_manifest`, and its sidecar gives
+        ``root`` when it is not passed.
     dest : str or Path
         The export folder; created when missing. It must be empty unless ``force``.
-    root : str, Path or dict
+    root : str, Path or dict, optional
         The scanned folder (or archive) that ``path`` is relative to, or ``{source: folder}`` for
-        a manifest of several sources. Archive members are always copied out (read from the
+        a manifest of several sources; by default the roots recorded in the sidecar of a
+        manifest given as a path. Archive members are always copied out (read from the
         archive in memory, verified like any copy): a link would need a file of their own.
     mode : {"hardlink", "symlink", "copy"}
         How each file is placed. ``hardlink`` falls back to a copy where a link is impossible
@@ -69,8 +78,12 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
         (``hardlink``, ``symlink`` or ``copy``: what was done, which is ``copy`` where a hardlink
         was impossible), ``renamed`` (the file name differs from the source's, to resolve a
         collision), ``gps_removed``, ``bytes`` and ``sha256`` (of the exported file).
-        Each ``dest/<split>.csv`` lists that split's files as ``path,label`` with ``path``
-        relative to ``dest``.
+        Each ``dest/<split>.csv`` lists that split's files as ``path,label,source`` with
+        ``path`` relative to ``dest`` and ``source`` the manifest's path of the file;
+        ``dest/classes.txt`` holds every class folder name, one a line, sorted: a class's index
+        is its line number (from 0) in every split, also where a split lacks the class. A file
+        in subfolders of its class folder (``cat/2019/a.jpg``) keeps them below the class folder
+        (``train/cat/2019/a.jpg``).
 
     Raises
     ------
@@ -83,7 +96,7 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
 
     Examples
     --------
-    >>> table = export(m, "export/", root="photos/", mode="copy")   # doctest: +SKIP
+    >>> table = export("prepared/manifest.csv", "export/", mode="copy")   # doctest: +SKIP
     >>> table[["target", "method"]].head(1)                         # doctest: +SKIP
                   target method
     0  test/cat/0001.jpg   copy
@@ -100,13 +113,14 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
                              f"so its metadata cannot change without changing the source); got mode={mode!r}")
     if not isinstance(dest, (str, os.PathLike)):
         raise TypeError(f"dest must be a path (str or Path), got {type(dest).__name__}")
+    manifest, root = _manifest_and_root(manifest, root)
     sources.check_root(root)
     check_manifest(manifest, ["path", "label", "split", "sha256"], hint="run scan and split first")
     dest = Path(dest)
 
     plan = plan_targets(manifest)
     if plan.empty:
-        raise InputError("no file of the manifest is in a split; run split first")
+        raise InputError(_nothing_in_a_split(manifest))
     _refuse_overlap(plan, root, dest)
     _prepare_dest(dest, plan, force=force)
 
@@ -123,10 +137,40 @@ def export(manifest, dest, *, root, mode="hardlink", force=False, strip_metadata
 
     table = pd.DataFrame(written, columns=list(RESULT_COLUMNS))
     _write_lists(table, dest, force=force)
+    _write_class_list(plan, dest, force=force)
     if failed:
         path, why = failed[0]
         raise InputError(f"{len(failed)} of {len(plan)} files were not exported; first: {path}: {why}")
     return table
+
+
+def _manifest_and_root(manifest, root):
+    """The manifest as a DataFrame and the root its paths are relative to (from its sidecar)."""
+    if isinstance(manifest, (str, os.PathLike)):
+        from .manifest import read, read_sidecar
+
+        path = manifest
+        manifest = read(path)
+        if root is None:
+            root = sources.roots_of(read_sidecar(path))
+            if root is None:
+                raise InputError(f"cannot tell which folder {path}'s paths are relative to: its "
+                                 "sidecar records no root; pass --root")
+    if root is None:
+        raise ParameterError("root is needed with a manifest given as a DataFrame (or give the "
+                             "manifest's path: its sidecar records the root)")
+    return manifest, root
+
+
+def _nothing_in_a_split(manifest) -> str:
+    """Why nothing can be exported: no row has a split, with the codes that kept them out."""
+    from .advice import why_left_out
+
+    issues = manifest["issues"].fillna("").astype(str) if "issues" in manifest.columns else None
+    why = why_left_out(issues) if issues is not None and len(issues) else ""
+    if not why:
+        return "no file of the manifest is in a split; run split first"
+    return f"no file of the manifest is in a split: all {len(manifest)} are left out{why}"
 
 
 def plan_targets(manifest):
@@ -163,11 +207,14 @@ def plan_targets(manifest):
     """
     rows = manifest[manifest["split"].fillna("").astype(str) != ""]
     plan = rows[["split", "label", "path", "sha256"]].astype(str).copy()
+    if plan.empty:
+        return plan.assign(target=[], renamed=[])[["split", "label", "target", "path", "sha256", "renamed"]]
     if not plan["path"].is_unique:
         raise InputError(f"path {plan['path'][plan['path'].duplicated()].iloc[0]!r} is in the manifest twice")
     plan["split_dir"] = _folder_names(plan["split"], "split")
     plan["label_dir"] = _folder_names(plan["label"], "label")
-    plan["name"] = [PurePosixPath(p).name for p in plan["path"]]
+    plan["inner"] = [_below_class(p, label) for p, label in zip(plan["path"], plan["label"])]
+    plan["name"] = plan["inner"]
     plan["renamed"] = False
     key = _folder_key(plan)
     # distinct paths have distinct digests, so a longer tag always ends a (vanishingly rare)
@@ -176,7 +223,9 @@ def plan_targets(manifest):
         if key.is_unique:
             break
         plan["renamed"] |= key.duplicated(keep=False)
-        plan.loc[plan["renamed"], "name"] = [_tagged(p, length) for p in plan.loc[plan["renamed"], "path"]]
+        clashing = plan.loc[plan["renamed"]]
+        plan.loc[plan["renamed"], "name"] = [_tagged(p, n, length)
+                                             for p, n in zip(clashing["path"], clashing["inner"])]
         key = _folder_key(plan)
     plan["target"] = plan["split_dir"] + "/" + plan["label_dir"] + "/" + plan["name"]
     order = {s: i for i, s in enumerate(SPLIT_ORDER)}
@@ -185,15 +234,27 @@ def plan_targets(manifest):
     return plan[["split", "label", "target", "path", "sha256", "renamed"]].reset_index(drop=True)
 
 
+def _below_class(path: str, label: str) -> str:
+    """Where a file goes inside its class folder: the subfolders below the path's folder named
+    like its label, when there is one (``cat/2019/a.jpg`` -> ``2019/a.jpg``), else the name."""
+    parts = PurePosixPath(path).parts
+    if label in parts[:-1]:
+        inner = parts[parts.index(label) + 1:]
+        if not any(part in ("", ".", "..") or "\\" in part for part in inner):
+            return "/".join(inner)
+    return parts[-1] if parts else path
+
+
 def _folder_key(plan):
     """Target paths as a case-insensitive filesystem compares them."""
     return plan["split_dir"] + "/" + plan["label_dir"] + "/" + plan["name"].str.casefold()
 
 
-def _tagged(path: str, length: int) -> str:
-    p = PurePosixPath(path)
+def _tagged(path: str, name: str, length: int) -> str:
+    """``name`` (a file's place in its class folder) with a tag from ``path`` before the extension."""
+    p = PurePosixPath(name)
     tag = hashlib.sha256(path.encode("utf-8", "surrogateescape")).hexdigest()[:length]
-    return f"{p.stem}~{tag}{p.suffix}"
+    return str(p.with_name(f"{p.stem}~{tag}{p.suffix}"))
 
 
 def _folder_names(values, what: str):
@@ -235,6 +296,7 @@ def _prepare_dest(dest: Path, plan, *, force: bool) -> None:
         for name in sorted(set(SPLIT_ORDER) | set(t.split("/", 1)[0] for t in plan["target"])):
             for entry in (dest / name, dest / f"{name}.csv"):
                 _remove(entry)
+        _remove(dest / CLASS_LIST)
     try:
         dest.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
@@ -365,13 +427,24 @@ def _publish(target: Path, source: Path, write) -> str:
 
 
 def _write_lists(table, dest: Path, *, force: bool) -> None:
-    """``dest/<split folder>.csv`` per split: ``path`` (relative to dest), ``label``."""
+    """``dest/<split folder>.csv`` per split: ``path`` (relative to dest), ``label``, ``source``
+    (the manifest's path, which links the exported file back to the one scanned)."""
     from .manifest import write_text
 
     for _, rows in table.groupby("split", sort=False):
         folder = rows["target"].iloc[0].split("/", 1)[0]
-        text = rows[["target", "label"]].rename(columns={"target": "path"}).to_csv(index=False, lineterminator="\n")
-        write_text(dest / f"{folder}.csv", text, force=force, ledger=False)
+        listed = rows[["target", "label", "path"]].rename(columns={"target": "path", "path": "source"})
+        write_text(dest / f"{folder}.csv", listed.to_csv(index=False, lineterminator="\n"),
+                   force=force, ledger=False)
+
+
+def _write_class_list(plan, dest: Path, *, force: bool) -> None:
+    """``dest/classes.txt``: every class folder of the export, sorted as a folder-per-class loader
+    sorts the folders it finds (torchvision's ``find_classes``: ``sorted`` of the names)."""
+    from .manifest import write_text
+
+    folders = sorted({target.split("/")[1] for target in plan["target"]})
+    write_text(dest / CLASS_LIST, "".join(f"{name}\n" for name in folders), force=force, ledger=False)
 
 
 # ---------------------------------------------------------------- location data

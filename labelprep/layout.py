@@ -9,6 +9,10 @@ Three layouts:
     auditing), the next folder is the label.
 ``table``
     a CSV with columns ``path,label`` and optionally ``group``; paths are relative to ROOT.
+
+A label table may go with split folders: the table gives the labels, ``ROOT/<train|val|test>/``
+the given split (``--layout split-folders --labels TABLE``, or ``auto`` with a table on such a
+tree).
 """
 
 from __future__ import annotations
@@ -76,18 +80,20 @@ def assign(paths: list[str], layout: str, *, root=None, labels_table=None, group
         raise ParameterError("layout='table' needs a label table (--labels TABLE.csv)")
     n = len(paths)
     label, group, given = [""] * n, [""] * n, [""] * n
-    if layout == "table":
+    # a label table gives the labels; train/val/test folders still give the split, with or
+    # without a table (ROOT/train/img1.jpg labelled by the table)
+    splits_from_folders = layout == "split-folders" or (layout == "table" and detect(folders) == "split-folders")
+    for i, p in enumerate(folders):
+        parts = p.split("/")
+        if splits_from_folders and len(parts) > 1 and parts[0].lower() in SPLIT_FOLDERS:
+            given[i] = SPLIT_FOLDERS[parts[0].lower()]
+            parts = parts[1:]
+        if len(parts) > 1 and labels_table is None:
+            label[i] = parts[0]
+    if labels_table is not None:
         table = read_table(labels_table, root=root, known=set(paths))
         for i, p in enumerate(paths):
             label[i], group[i] = table.get(p, ("", ""))
-    else:
-        for i, p in enumerate(folders):
-            parts = p.split("/")
-            if layout == "split-folders" and len(parts) > 1 and parts[0].lower() in SPLIT_FOLDERS:
-                given[i] = SPLIT_FOLDERS[parts[0].lower()]
-                parts = parts[1:]
-            if len(parts) > 1:
-                label[i] = parts[0]
     if group_pattern:
         regex = _compile(group_pattern)
         for i, p in enumerate(paths):

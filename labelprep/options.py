@@ -61,7 +61,8 @@ class Option:
     ``click`` holds the keywords of :func:`click.option` other than the default, which is
     ``default``. ``recorded`` says whether the sidecar keeps the value (how the work is spread,
     such as ``jobs``, changes no result and is not kept); ``record_if_set`` keeps a flag only
-    when it is on, so sidecars of runs without it stay as they were.
+    when it is on, so sidecars of runs without it stay as they were. ``help_for`` gives the
+    help that the command of one stage shows instead of ``click["help"]``.
     """
 
     name: str
@@ -72,15 +73,19 @@ class Option:
     record_if_set: bool = False
     short: str | None = None
     negatable: bool = False  # a flag that is on by default: also --no-name to turn it off
+    # the help a command of one stage shows instead (what the option does there)
+    help_for: dict = field(default_factory=dict)
 
     @property
     def flag(self) -> str:
         return "--" + self.name.replace("_", "-")
 
-    def decorator(self) -> Callable:
+    def decorator(self, stages=()) -> Callable:
         flag = f"{self.flag}/--no-{self.flag[2:]}" if self.negatable else self.flag
         names = [flag] + ([self.short] if self.short else [])
         kwargs = dict(self.click)
+        if len(stages) == 1 and stages[0] in self.help_for:
+            kwargs["help"] = self.help_for[stages[0]]
         if kwargs.get("is_flag"):
             kwargs.setdefault("default", bool(self.default))
         else:
@@ -123,7 +128,10 @@ SPEC = (
         help="Run the work on the Dask cluster whose scheduler is at ADDRESS (e.g. "
              "tcp://scheduler-host:8786) instead of local processes: the decoding (every worker "
              "must see ROOT at the same path) and the near-pair search. Needs labelprep[cluster]."),
-        recorded=False),
+        recorded=False,
+        help_for={"group": "Run the near-pair search on the Dask cluster whose scheduler is at "
+                           "ADDRESS (e.g. tcp://scheduler-host:8786); the same clusters as a local "
+                           "run. Needs labelprep[cluster]."}),
     Option("max_pixels", ("scan", "check"), defaults.MAX_PIXELS, dict(
         type=click.IntRange(min=1),
         help="Pixel budget per image; larger images are flagged and not decoded. "
@@ -174,6 +182,11 @@ SPEC = (
     Option("keep_from", ("split",), None, dict(
         type=_existing_manifest, metavar="OLD_MANIFEST",
         help="Keep every file already assigned in this manifest where it was; place only new files.")),
+    Option("resplit", ("split",), False, dict(
+        is_flag=True,
+        help="On a ROOT/<train|val|test>/<label>/ tree, split anew; by default every file stays "
+             "in its folder's split and only files outside those folders are placed."),
+        record_if_set=True),
 )
 BY_NAME = {option.name: option for option in SPEC}
 
@@ -188,7 +201,7 @@ def of(*stages: str) -> list:
 
 def click_options(*stages: str) -> Callable:
     """One decorator adding the click options of ``stages`` to a command."""
-    decorators = [option.decorator() for option in of(*stages)]
+    decorators = [option.decorator(stages) for option in of(*stages)]
 
     def apply(func):
         for deco in reversed(decorators):

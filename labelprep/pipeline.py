@@ -22,11 +22,16 @@ def prepare(root, out, *, force=False, progress=None, decisions=None, **options)
     :func:`labelprep.embedding.features_for`, :func:`~labelprep.group`, :func:`~labelprep.vet` and
     :func:`~labelprep.split`, as listed in :data:`labelprep.options.SPEC`
     (an option left out takes its default; one that is not there raises ``TypeError``);
-    ``keep_from`` is a manifest path or DataFrame whose split is kept. ``cluster`` (a Dask
-    scheduler address) decodes the files on that cluster's workers, as in :func:`~labelprep.scan`.
-    The sidecar records every option that shapes the result (:func:`labelprep.options.record`).
-    ``decisions`` is a decisions file (:mod:`labelprep.decisions`); by default
-    ``out/decisions.csv`` when it exists. Its digest is recorded in the sidecar.
+    ``keep_from`` is a manifest path or DataFrame whose split is kept. A tree laid out as
+    ``ROOT/<train|val|test>/<label>/`` keeps its given split (each file stays in its folder's
+    split, files outside them are placed) unless ``resplit`` or ``keep_from``. ``cluster`` (a
+    Dask scheduler address) decodes the files on that cluster's workers, as in
+    :func:`~labelprep.scan`. Nothing in ``out`` is indexed, nor a label table stored inside a
+    root. The sidecar records every option that shapes the result
+    (:func:`labelprep.options.record`) and what the scan did (``stages.prepare.scan``: what it
+    left out and skipped, empty folders). ``decisions`` is a decisions file
+    (:mod:`labelprep.decisions`); by default ``out/decisions.csv`` when it exists. Its digest is
+    recorded in the sidecar.
 
     Returns
     -------
@@ -60,7 +65,7 @@ def prepare(root, out, *, force=False, progress=None, decisions=None, **options)
 
     with resuming(target, root=root, max_pixels=chosen["max_pixels"]) as (previous, journal):
         m, scan_facts = scan(root, previous=previous, journal=journal, progress=progress, return_facts=True,
-                             **spec.for_stage("scan", chosen))
+                             exclude=[out], **spec.for_stage("scan", chosen))
         m = check(m, **spec.for_stage("check", chosen))
         learned = _learned(m, roots_of(where), target, chosen, progress)
         m = group_and_split(m, decided, group_options={"progress": progress, **spec.for_stage("group", chosen)},

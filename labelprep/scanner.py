@@ -68,7 +68,9 @@ class Listing(NamedTuple):
     format holds such a name exactly, and pandas' string columns refuse it); ``skipped`` junk names
     left out; ``refused`` ``{path: reason}`` for archive members refused unread and archives that
     cannot be read; ``members`` ``{path: sources.Member}`` for the members among ``files``;
-    ``inside`` ``{path: archive path}`` for every entry found inside an archive.
+    ``inside`` ``{path: archive path}`` for every entry found inside an archive; ``excluded``
+    the entries left out because the caller named them (labelprep's own outputs); ``empty`` the
+    folders with nothing indexed below them (the outermost of them only).
     """
 
     files: list
@@ -78,16 +80,20 @@ class Listing(NamedTuple):
     refused: dict
     members: dict
     inside: dict
+    excluded: list = []
+    empty: list = []
 
 
-def walk(root, *, include_hidden: bool = False) -> Listing:
+def walk(root, *, include_hidden: bool = False, exclude=frozenset()) -> Listing:
     """Every regular file below ``root`` (a folder or an archive), archives listed member by member.
 
-    See :class:`Listing` for what comes back.
+    ``exclude`` holds relative POSIX paths of files and folders to leave out (a folder with
+    everything below it). See :class:`Listing` for what comes back.
     """
     root = os.fspath(root)
-    files, links, misnamed, skipped = [], [], [], []
+    files, links, misnamed, skipped, excluded = [], [], [], [], []
     refused, members, inside = {}, {}, {}
+    folders, filled = [], {""}
     if os.path.isfile(root) and sources.is_archive(root):
         _expand(root, "", files, misnamed, skipped, refused, members, inside, include_hidden)
         return Listing(sorted(files), [], sorted(misnamed), sorted(skipped), refused, members, inside)
@@ -103,9 +109,12 @@ def walk(root, *, include_hidden: bool = False) -> Listing:
             files.append(rel_dir)  # probed later, where the unreadable folder becomes a row
             continue
         subdirs = []
+        before = len(files) + len(links) + len(misnamed) + len(refused)
         for entry in entries:
             rel = f"{rel_dir}/{entry.name}" if rel_dir else entry.name
-            if not include_hidden and is_junk(entry.name):
+            if rel in exclude:
+                excluded.append(rel)
+            elif not include_hidden and is_junk(entry.name):
                 skipped.append(rel)
             elif not _is_utf8(entry.name):
                 misnamed.append(_escaped(rel))
@@ -117,8 +126,16 @@ def walk(root, *, include_hidden: bool = False) -> Listing:
                 _expand(entry.path, rel, files, misnamed, skipped, refused, members, inside, include_hidden)
             else:
                 files.append(rel)
+        folders += subdirs
+        if len(files) + len(links) + len(misnamed) + len(refused) > before:
+            folder = rel_dir
+            while folder not in filled:  # mark the folder and its parents as holding something
+                filled.add(folder)
+                folder = posixpath.dirname(folder)
         stack.extend(reversed(subdirs))
-    return Listing(sorted(files), sorted(links), sorted(misnamed), sorted(skipped), refused, members, inside)
+    empty = [d for d in folders if d not in filled and posixpath.dirname(d) in filled]
+    return Listing(sorted(files), sorted(links), sorted(misnamed), sorted(skipped), refused, members,
+                   inside, sorted(excluded), sorted(empty))
 
 
 def _expand(path: str, rel: str, files, misnamed, skipped, refused, members, inside, include_hidden) -> None:
@@ -154,7 +171,8 @@ def _escaped(text: str) -> str:
 
 def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_by_source: bool = False,
          include_hidden: bool = False, jobs=None, max_pixels: int = DEFAULT_MAX_PIXELS,
-         previous=None, journal=None, progress=None, cluster=None, return_facts: bool = False):
+         previous=None, journal=None, progress=None, cluster=None, exclude=(),
+         return_facts: bool = False):
     """Index every file below ``root`` into a new manifest, in memory.
 
     :func:`scan_to` scans into a manifest file instead, reusing that file's rows on a rescan and
@@ -197,6 +215,10 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     progress : callable, optional
         See :mod:`labelprep.progress`; called around the comparison with earlier rows (label
         ``"rescan"``, when there are any) and around the files that are decoded (``"scan files"``).
+    exclude : sequence of path-like
+        Files and folders to leave out where they lie inside a root: the caller's outputs (an
+        output folder, a manifest and its companions, see :func:`own_files`). The journal and
+        the label tables are always left out.
     return_facts : bool, default False
         Also return what the scan did, as scikit-learn's loaders return ``(X, y)`` on request.
 
@@ -204,7 +226,8 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     -------
     DataFrame, or (DataFrame, dict) with ``return_facts``
         One row per file, sorted by path; the dict holds counts (probed, reused, skipped junk,
-        links, misnamed, refused) and the layout of each root.
+        links, misnamed, refused), the layout of each root, ``excluded`` (paths left out as
+        labelprep's own files) and ``empty_folders`` (folders with nothing indexed below them).
 
     Examples
     --------
@@ -222,9 +245,13 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
         raise ParameterError(f"max_pixels must be a positive int; got max_pixels={max_pixels!r}")
     files, links, misnamed, refused, skipped, layouts, order = [], [], [], {}, [], {}, []
     members, bases, columns = {}, {}, {"label": [], "group": [], "given_split": [], "source": []}
+    own = [*exclude, *tables.values(), *([journal] if journal is not None else [])]
+    excluded, empty = [], []
     for name, root_path in named:
-        found = walk(root_path, include_hidden=include_hidden)
+        found = walk(root_path, include_hidden=include_hidden, exclude=_inside(root_path, own))
         prefix = f"{name}/" if name else ""
+        excluded += [prefix + rel for rel in found.excluded]
+        empty += [prefix + rel for rel in found.empty]
         entries = found.files + found.links + found.misnamed + list(found.refused)
         order += [prefix + rel for rel in entries]
         # labels come from the folders around and inside an archive; its own name is no class
@@ -297,8 +324,32 @@ def scan(root, *, layout: str = "auto", labels=None, group_pattern=None, group_b
     chosen = layouts[named[0][0]] if len(named) == 1 else layouts
     facts = {"layout": chosen, "probed": len(todo), "reused": len(files) - len(todo),
                         "links": len(links), "misnamed": len(misnamed), "refused": len(refused),
-                        "skipped_junk": len(skipped), "skipped_examples": skipped[:5]}
+                        "skipped_junk": len(skipped), "skipped_examples": skipped[:5],
+                        "excluded": excluded, "empty_folders": empty}
     return (df, facts) if return_facts else df
+
+
+def own_files(manifest_path) -> list:
+    """The files labelprep writes for manifest ``manifest_path``: itself, its sidecar, its scan
+    cache, its journal and the ledger of outputs in its folder (what a scan of a root holding
+    them must not index)."""
+    from .manifest import LEDGER_NAME, cache_path, sidecar_path
+
+    path = Path(manifest_path)
+    return [path, sidecar_path(path), cache_path(path), journal_path(path), path.parent / LEDGER_NAME]
+
+
+def _inside(root, paths) -> frozenset:
+    """``paths`` that lie inside folder ``root``, as POSIX paths relative to it."""
+    if not os.path.isdir(root):
+        return frozenset()
+    base = os.path.realpath(root)
+    found = set()
+    for path in paths:
+        full = os.path.realpath(os.fspath(path))
+        if full != base and full.startswith(base.rstrip(os.sep) + os.sep):
+            found.add(Path(os.path.relpath(full, base)).as_posix())
+    return frozenset(found)
 
 
 def _location(members: dict, bases: dict, rel: str):
@@ -336,7 +387,8 @@ def scan_to(root, output, *, partitions=None, force: bool = False, progress=None
     A manifest already at ``output`` (of the same roots, budget and version) is the rescan cache:
     only new and changed files are decoded. The journal beside ``output`` makes an interrupted
     scan resume where it stopped; it is removed once the manifest is written. The sidecar
-    records the roots, the options and what the scan did.
+    records the roots, the options and what the scan did. ``output`` and the files beside it
+    (:func:`own_files`) are not indexed when they lie inside a root.
 
     Parameters
     ----------
@@ -374,7 +426,7 @@ def scan_to(root, output, *, partitions=None, force: bool = False, progress=None
         manifest.check_partitions(partitions, output)
     with resuming(output, root=root, max_pixels=chosen["max_pixels"]) as (previous, journal):
         df, facts = scan(root, previous=previous, journal=journal, progress=progress, return_facts=True,
-                         **spec.for_stage("scan", chosen))
+                         exclude=own_files(output), **spec.for_stage("scan", chosen))
         meta = {**sources.describe(sources.name_roots(root)),
                 **spec.sidecar("scan", spec.record(chosen, "scan"), result=facts)}
         manifest.write(df, output, meta=meta, force=True, partitions=partitions, new_sidecar=True)

@@ -21,7 +21,9 @@ share in split ``k`` from its overall share; the second the squared relative siz
 split. Weighting by the split's target size matches the small val and test splits as closely as
 train. ``Z`` counts empty (split, class) cells that could have been filled: a class with ``u``
 units should reach the first ``u`` splits in the order train, test, val (all of them when ``u``
-is large enough); ``P = 1`` outweighs any share error.
+is large enough); ``P = 1`` outweighs any share error. Folds have no such order: only a class
+with a unit for every fold is penalised for missing one, so a thin class is spread over the
+folds by the size and share terms.
 
 Search
 ------
@@ -33,7 +35,9 @@ Search
    ``J`` when that unit alone moves there (vectorised over units). The best moves per (from, to,
    main class) are applied together when the batch lowers ``J``; otherwise the batch is halved
    until it does.
-3. Pair swaps, in the same round: for every two splits, the units whose moves cost least are
+3. Pair swaps, in the same round: for pairs of splits (every pair for train/val/test; with many
+   folds each fold and the ``_SWAP_PARTNERS`` folds its units move to most cheaply, so a round
+   costs time linear in the number of folds), the units whose moves cost least are
    paired and the exact change of exchanging them is computed as a matrix; the best disjoint
    exchanges are applied the same way. Swaps fix what single moves cannot (a split holding one
    unit too large while lacking a smaller one).
@@ -72,6 +76,9 @@ _RESTART_MAX_UNITS = 2000
 # units per split tried in a swap round (those whose move alone costs least), so a round costs
 # at most this squared per pair of splits
 _SWAP_CANDIDATES = 256
+# splits each split exchanges units with in a round (see _Search._swap_pairs): train/val/test and
+# up to 5 folds try every pair, more folds only the most promising, so a round stays linear in K
+_SWAP_PARTNERS = 4
 # weight of an empty (split, class) cell that could have been filled; far above any share term
 _EMPTY_CELL_PENALTY = 1.0
 # weight of a split's size error against its class-share errors (both in rows)
@@ -90,7 +97,8 @@ _PRECEDENCE = ("test", "val", "train")
 _PRECEDENCE_RANK = {name: i for i, name in enumerate(_PRECEDENCE)}
 
 
-def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, progress=None):
+def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=None, resplit=False,
+          progress=None):
     """Assign every usable row to train, val or test, keeping each unit in one split.
 
     Parameters
@@ -112,6 +120,11 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
         ``path``) keeps its split (and its fold, when folds are asked and it had one); only the
         other rows are placed. A new row in a unit with a kept row follows it; a unit holding
         kept rows of several splits follows test, then val, then train.
+    resplit : bool
+        Without ``keep_from``, a manifest of a ``ROOT/<train|val|test>/<label>/`` tree keeps
+        every row in its ``given_split`` (the folder it was found in, matched by path) the way
+        ``keep_from`` keeps rows, and places only rows outside such folders (see
+        :func:`given_assignment`); ``resplit=True`` splits it anew.
     progress : callable, optional
         ``progress(iterable, total=int, label=str)`` wrapped around the one-by-one placement.
 
@@ -142,6 +155,8 @@ def split(manifest, *, ratios=(0.8, 0.1, 0.1), seed=0, folds=None, keep_from=Non
     folds = _check_folds(folds)
     if keep_from is not None:
         check_manifest(keep_from, ("path", "split"), name="keep_from")
+    elif not resplit:
+        keep_from = given_assignment(manifest)
 
     order = manifest["path"].astype(str).argsort(kind="stable").to_numpy()
     frame = manifest.iloc[order]
@@ -202,7 +217,7 @@ def _place(units, old_split, old_fold, shares, folds, seed, progress):
         old_fold = np.where(kept & (old_fold >= 0) & (old_fold < folds), old_fold, -1)
         sub_fixed = sub.fixed_from_rows(old_fold[in_pool])
         fold_units, thin_folds = _assign(sub, np.full(folds, 1.0 / folds), sub_fixed,
-                                         range(folds), _rng(seed, 1), progress)
+                                         None, _rng(seed, 1), progress)
         thin = thin | thin_folds
         row_fold[in_pool] = fold_units[sub.row_unit]
         row_fold = np.where(old_fold >= 0, old_fold, row_fold)
@@ -226,11 +241,14 @@ def split_summary(manifest, *, keep_from=None) -> dict:
         ``rows``; ``assigned`` and ``left_out`` (rows with an empty split); ``splits``
         (rows per split name); ``folds`` (rows per fold, ``{}`` without folds);
         ``thin_classes`` (labels carrying the ``thin-class`` warning); ``missing``
-        (``{split: [labels present elsewhere but absent here]}``, only splits that lack one).
+        (``{split: [labels present elsewhere but absent here]}``, only splits that lack one);
+        with folds ``units_per_class`` (``{label: units}``: the groups, clusters or single files
+        of each class that the folds share out) and ``fold_units`` (all of them).
         With ``keep_from`` also ``kept`` (rows found in the older split and still there),
         ``placed`` (rows not found there that got a split), ``moved`` (rows found there whose
-        split changed: a val row becomes train when folds are asked) and ``dropped`` (rows found
-        there that are now left out, e.g. because they carry an error code).
+        split changed: a val row becomes train when folds are asked), ``dropped`` (rows found
+        there that are now left out, e.g. because they carry an error code) and ``dropped_from``
+        (``{old split: [paths that were in it and are now left out]}``, matched by path).
 
     Examples
     --------
@@ -267,16 +285,59 @@ def split_summary(manifest, *, keep_from=None) -> dict:
                "left_out": int((~assigned).sum()),
                "splits": {n: int((split_col == n).sum()) for n in names},
                "folds": folds, "thin_classes": thin, "missing": missing}
+    if folds:
+        summary["units_per_class"], summary["fold_units"] = _fold_units(manifest, labels)
     if keep_from is not None:
         check_manifest(keep_from, ("path", "split"), name="keep_from")
         old, _ = _old_assignment(manifest, keep_from)
         now = split_col.to_numpy(dtype=object)
         found = old != ""
+        dropped = found & (now == "")
+        # who lost a member: the old split of the same path (a new byte copy of an old test
+        # file matches it by sha256 above, but was never in test)
+        paths = manifest["path"].astype(str)
+        was = paths.map(keep_from.assign(path=keep_from["path"].astype(str))
+                        .drop_duplicates("path").set_index("path")["split"]).fillna("").to_numpy(dtype=object)
         summary.update(kept=int((found & (now == old)).sum()),
                        placed=int((~found & (now != "")).sum()),
                        moved=int((found & (now != "") & (now != old)).sum()),
-                       dropped=int((found & (now == "")).sum()))
+                       dropped=int(dropped.sum()),
+                       dropped_from={n: sorted(paths[(now == "") & (was == n)]) for n in SPLIT_NAMES
+                                     if ((now == "") & (was == n)).any()})
     return summary
+
+
+def _fold_units(manifest, labels):
+    """Units (linked as :func:`split` links them) among the rows that have a fold: per class, and
+    in all."""
+    import pandas as pd
+
+    unit = _components(_link_keys(manifest), len(manifest))
+    has_fold = manifest["fold"].notna().to_numpy()
+    pairs = pd.DataFrame({"label": labels.to_numpy()[has_fold], "unit": unit[has_fold]})
+    per_class = {str(k): int(v) for k, v in pairs.groupby("label")["unit"].nunique().items()}
+    return per_class, int(pairs["unit"].nunique())
+
+
+def given_assignment(manifest):
+    """The split the folders gave (``given_split``) as a ``path,split`` frame for ``keep_from``,
+    or None when no row has one. Rows are matched by path only: a byte copy in another folder
+    is another file here.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> m = pd.DataFrame({"path": ["train/cat/a.png", "b.png"], "given_split": ["train", ""]})
+    >>> given_assignment(m).to_dict("list")
+    {'path': ['train/cat/a.png'], 'split': ['train']}
+    """
+    if "given_split" not in manifest.columns:
+        return None
+    given = manifest["given_split"].fillna("").astype(str)
+    if not given.isin(SPLIT_NAMES).any():
+        return None
+    rows = given.isin(SPLIT_NAMES)
+    return manifest.loc[rows, ["path"]].assign(split=given[rows]).reset_index(drop=True)
 
 
 # ---------------------------------------------------------------- parameters
@@ -483,8 +544,8 @@ def _assign(units, ratios, fixed, priority, rng, progress):
 
     ``ratios`` holds one target share per split (0 for a split that only keeps fixed units);
     ``fixed`` the split of each unit that may not move, -1 for a free unit; ``priority`` the
-    split indices in the order a class too thin for all of them should reach them. See the
-    module docstring for the objective and the search.
+    split indices in the order a class too thin for all of them should reach them (None: the
+    splits are interchangeable folds). See the module docstring for the objective and the search.
     """
     ratios = np.asarray(ratios, dtype=float)
     best = None
@@ -537,11 +598,17 @@ class _Search:
         units_per_class = np.bincount(units.ec[taking], minlength=units.n_classes)
         self.thin = (units_per_class < self.active.sum()) & (units_per_class > 0)
         # penalised (split, class) cells: a class with u units should reach the first u active
-        # splits in priority order (all of them when it has enough units)
-        rank = np.full(self.k, self.k)
-        in_order = [k for k in priority if self.active[k]]
-        rank[in_order] = np.arange(len(in_order))
-        self.penalised = (rank[:, None] < units_per_class[None, :]) * _EMPTY_CELL_PENALTY
+        # splits in priority order (all of them when it has enough units). Folds have no order
+        # (priority None): a class too thin for every fold is left to the size and share terms,
+        # which spread its units over the folds instead of crowding the first u of them
+        if priority is None:
+            reaching = self.active[:, None] & (units_per_class >= self.active.sum())[None, :]
+        else:
+            rank = np.full(self.k, self.k)
+            in_order = [k for k in priority if self.active[k]]
+            rank[in_order] = np.arange(len(in_order))
+            reaching = rank[:, None] < units_per_class[None, :]
+        self.penalised = reaching * _EMPTY_CELL_PENALTY
         # per unit: v . p and |v'|^2 = |v|^2 - 2 s (v . p) + s^2 |p|^2
         self.vp = np.bincount(units.eu, units.ev * self.p[units.ec], minlength=units.n_units)
         vv = np.bincount(units.eu, units.ev ** 2, minlength=units.n_units)
@@ -572,19 +639,16 @@ class _Search:
         spread = self.weight @ ((r * r).sum(axis=1) + _SIZE_WEIGHT * e * e)
         return spread + float((self.penalised * (self.x == 0)).sum())
 
-    def _dots(self, units):
-        """``v'_u . R_k`` for every unit and split, with the entries it was computed from."""
-        r, e = self._residuals()
-        ent, local = self.u.entries_of(units)
+    def _dots(self, units, ent, local, dest):
+        """``v'_u . R_k`` for every unit ``u`` of ``units`` and its own split ``k = dest[i]``."""
+        r, _ = self._residuals()
         c, v = self.u.ec[ent], self.u.ev[ent]
-        size = self.u.size[units]
-        dots = np.stack([np.bincount(local, v * r[k, c], minlength=len(units)) for k in range(self.k)],
-                        axis=1) - np.outer(size, r @ self.p)
-        return dots, e, ent, local
+        return (np.bincount(local, v * r[dest[local], c], minlength=len(units))
+                - self.u.size[units] * (r @ self.p)[dest])
 
     # -- construction
     def place_best(self, unit):
-        """Put one unit where the objective grows least (the one-unit case of :meth:`_dots`)."""
+        """Put one unit where the objective grows least (the one-unit case of :meth:`move_deltas`)."""
         lo, hi = self.u.ptr[unit], self.u.ptr[unit + 1]
         c, v = self.u.ec[lo:hi], self.u.ev[lo:hi]
         size = self.u.size[unit]
@@ -617,39 +681,60 @@ class _Search:
         self._add(units, dest, +1)
 
     # -- improvement
-    def move_deltas(self, units):
-        """Exact change of the objective for moving each unit alone to each split (inf: no move)."""
-        dots, e, ent, local = self._dots(units)
+    def move_deltas(self, units, splits=None):
+        """Exact change of the objective for moving each unit alone to each split (inf: no move).
+
+        ``splits`` limits the columns computed (all splits by default), so asking for one
+        destination costs one pass over the units' entries whatever the number of splits.
+        """
+        splits = range(self.k) if splits is None else splits
+        ent, local = self.u.entries_of(units)
         c, v = self.u.ec[ent], self.u.ev[ent]
+        e = self.s - self.size_target
         src = self.assign[units]
         a = src[local]
         size = self.u.size[units]
-        rows = np.arange(len(units))
         leave_empty = np.bincount(local, self.penalised[a, c] * (self.x[a, c] == v), minlength=len(units))
-        leave = (self.weight[src] * (self.norm2[units] - 2 * dots[rows, src]
+        leave = (self.weight[src] * (self.norm2[units] - 2 * self._dots(units, ent, local, src)
                                      + _SIZE_WEIGHT * (size * size - 2 * size * e[src])) + leave_empty)
-        deltas = np.empty((len(units), self.k))
-        for b in range(self.k):
+        deltas = np.empty((len(units), len(splits)))
+        for column, b in enumerate(splits):
             fill_empty = np.bincount(local, self.penalised[b, c] * (self.x[b, c] == 0), minlength=len(units))
-            deltas[:, b] = (self.weight[b] * (self.norm2[units] + 2 * dots[:, b]
-                                              + _SIZE_WEIGHT * (size * size + 2 * size * e[b]))
-                            - fill_empty + leave)
-        deltas[:, ~self.active] = np.inf
-        deltas[rows, src] = np.inf
+            dots = self._dots(units, ent, local, np.full(len(units), b))
+            deltas[:, column] = (self.weight[b] * (self.norm2[units] + 2 * dots
+                                                   + _SIZE_WEIGHT * (size * size + 2 * size * e[b]))
+                                 - fill_empty + leave)
+            deltas[src == b, column] = np.inf
+            if not self.active[b]:
+                deltas[:, column] = np.inf
         return deltas
 
     def improve(self):
-        """One round of moves, then swaps between every two splits; True when J went down."""
+        """One round of moves, then swaps between pairs of splits; True when J went down."""
         units = np.flatnonzero(self.movable)
         if units.size == 0:
             return False
         deltas = self.move_deltas(units)
         improved = self._moves(units, deltas)
-        for a in range(self.k):
-            for b in range(a + 1, self.k):
-                if self.active[a] and self.active[b]:
-                    improved |= self._swap_pair(a, b, units, deltas)
+        for a, b in self._swap_pairs(units, deltas):
+            improved |= self._swap_pair(a, b, units, deltas)
         return improved
+
+    def _swap_pairs(self, units, deltas):
+        """The pairs of splits a round tries to swap between, at most ``_SWAP_PARTNERS`` per split.
+
+        Each split is paired with the splits that its units' cheapest single moves go to (where
+        a unit from it fits best), so the pairs, and a round's cost, grow linearly with the
+        number of splits (folds); with up to ``_SWAP_PARTNERS + 1`` splits every pair is tried.
+        """
+        cheapest = np.full((self.k, self.k), np.inf)
+        np.minimum.at(cheapest, self.assign[units], deltas)
+        pairs = set()
+        for a in np.flatnonzero(self.active):
+            finite = np.flatnonzero(np.isfinite(cheapest[a]))
+            near = finite[np.lexsort((finite, cheapest[a, finite]))[:_SWAP_PARTNERS]]
+            pairs.update((min(a, b), max(a, b)) for b in near.tolist())
+        return sorted(pairs)
 
     def _moves(self, units, deltas):
         """Apply the best single-unit moves, one per (from, to, main class)."""
@@ -698,7 +783,7 @@ class _Search:
             pool = np.sort(pool[np.lexsort((pool, cost))[:_SWAP_CANDIDATES]])
         if pool.size == 0:
             return pool, np.zeros(0)
-        return pool, self.move_deltas(pool)[:, dest]
+        return pool, self.move_deltas(pool, [dest])[:, 0]
 
     def _class_rows(self, units):
         """Dense (units x classes) row counts."""

@@ -52,7 +52,7 @@ CASES = {
     "bad/cut.jpg": (encode(textured(seed=4))[:700], "truncated", None),
     "bad/crc.png": (_bad_crc_png(), "corrupt", None),
     "bad/bomb.png": (_hand_png(50_000, 50_000), "pixel-limit", None),
-    "bad/tiny.jpg": (encode(textured((20, 16), seed=5)), "too-small", "20x16, shorter side under 32 px"),
+    "bad/tiny.jpg": (encode(textured((20, 16), seed=5)), "too-small", "20x16, shorter side under 32 px; a lower --min-side keeps it"),
     "bad/png.jpg": (encode(textured(seed=6), "PNG"), "wrong-extension", "named .jpg but the content is png"),
     "bad/strip.jpg": (encode(textured((400, 100), seed=7)), "extreme-aspect", "400x100, 4.0:1, beyond 3:1"),
     "bad/anim.gif": (_animated_gif(), "multi-frame", "3 frames; loaders read only the first"),
@@ -205,7 +205,7 @@ class TestSummary:
         """Counts per code, reasons per file, and a tail line for the files not shown."""
         lines = summary_lines(check(checked.reset_index(drop=True)), examples=1)
         assert "too-small        error         1 file" in lines
-        assert "    bad/tiny.jpg: 20x16, shorter side under 32 px" in lines
+        assert "    bad/tiny.jpg: 20x16, shorter side under 32 px; a lower --min-side keeps it" in lines
         assert lines[lines.index("unusual-mode     warning       5 files") + 2] == "    ... and 4 more"
 
     def test_clean(self, checked):
@@ -247,7 +247,7 @@ class TestCheckCommand:
         result = runner.invoke(main, ["check", str(manifest_path)])
         assert result.exit_code == 0, result.output
         assert "too-small        error         1 file" in result.output
-        assert "    bad/tiny.jpg: 20x16, shorter side under 32 px" in result.output
+        assert "    bad/tiny.jpg: 20x16, shorter side under 32 px; a lower --min-side keeps it" in result.output
         assert read(manifest_path).set_index("path").loc["bad/tiny.jpg", "issues"] == "too-small"
 
     @pytest.mark.parametrize("fail_on, code", [("error", 1), ("warning", 1), ("never", 0)])

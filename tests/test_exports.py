@@ -75,14 +75,19 @@ def _check_tree(dest: Path, root: Path, manifest: pd.DataFrame, table: pd.DataFr
         assert _sha(dest / row.target) == source["sha256"] == row.sha256
         assert row.bytes == (root / row.path).stat().st_size
         expected[row.target] = row.label
-    lists = {}
+    lists, links = {}, {}
     for split in placed["split"].unique():
         with open(dest / f"{split}.csv", newline="", encoding="utf-8") as fh:
             reader = csv.DictReader(fh)
-            assert reader.fieldnames == ["path", "label"]
-            lists.update({r["path"]: r["label"] for r in reader})
+            assert reader.fieldnames == ["path", "label", "source"]
+            for r in reader:
+                lists[r["path"]] = r["label"]
+                links[r["path"]] = r["source"]
     assert lists == expected
-    assert set(_tree(dest)) == set(expected) | {f"{s}.csv" for s in placed["split"].unique()}
+    assert links == dict(zip(table["target"], table["path"]))  # each exported file names its source
+    classes = (dest / "classes.txt").read_text(encoding="utf-8").splitlines()
+    assert classes == sorted(set(placed["label"]))
+    assert set(_tree(dest)) == set(expected) | {f"{s}.csv" for s in placed["split"].unique()} | {"classes.txt"}
 
 
 class TestExport:
@@ -164,7 +169,7 @@ class TestExport:
         assert not (dest / "val").is_symlink()
         placed = _tree(dest)
         placed.pop("mine.txt")
-        assert set(placed) == set(table["target"]) | {"train.csv", "val.csv", "test.csv"}
+        assert set(placed) == set(table["target"]) | {"train.csv", "val.csv", "test.csv", "classes.txt"}
 
     def test_dest_holding_sources_refused(self, dataset):
         """Exporting into the scanned folder is refused: force there could delete sources."""
@@ -337,7 +342,7 @@ class TestStripMetadata:
         m = _manifest(root, [("k/geo.tif", "k", "train"), ("k/ok.png", "k", "train")])
         with pytest.raises(InputError, match="k/geo.tif: strip_metadata cannot remove location data from TIFF"):
             export(m, tmp_path / "out", root=root, mode="copy", strip_metadata=True)
-        assert sorted(_tree(tmp_path / "out")) == ["train.csv", "train/k/ok.png"]
+        assert sorted(_tree(tmp_path / "out")) == ["classes.txt", "train.csv", "train/k/ok.png"]
 
 
 class TestCommand:
@@ -353,7 +358,7 @@ class TestCommand:
         result = CliRunner().invoke(main, ["export", str(path), str(tmp_path / "out"), "--mode", "copy"])
         assert result.exit_code == 0, result.output
         assert "6 files placed under" in result.output and "6 copy" in result.output
-        assert sorted(p for p in _tree(tmp_path / "out") if not p.endswith(".csv")) == sorted(
+        assert sorted(p for p in _tree(tmp_path / "out") if not p.endswith((".csv", ".txt"))) == sorted(
             plan_targets(m)["target"])
         again = CliRunner().invoke(main, ["export", str(path), str(tmp_path / "out")])
         assert again.exit_code == 2 and "not empty" in again.output

@@ -118,7 +118,7 @@ class TestCommands:
         result = _run(runner, "export", prepared / "manifest.csv", dest, "-q")
         assert result.exit_code == 2 and lists.read_bytes() == FOREIGN
         assert _run(runner, "export", prepared / "manifest.csv", dest, "-q", "--force").exit_code == 0
-        assert lists.read_text().startswith("path,label\n")
+        assert lists.read_text().startswith("path,label,source\n")
 
     def test_prepare(self, runner, class_tree, tmp_path):
         out = tmp_path / "out"
