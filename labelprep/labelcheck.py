@@ -140,8 +140,7 @@ def vet(manifest, *, embeddings=None, neighbours=NEIGHBOURS, min_doubt=MIN_DOUBT
             agreement[candidate] = round(float((np.argmax(found_share, axis=1) == code).mean()), 4)
             if agreement[candidate] > best_agreement:
                 best_agreement, kind = agreement[candidate], candidate
-                index, sims, share, residual, chosen = (found_index, found_sims, found_share,
-                                                        residual_of, vectors)
+                share, residual, chosen = found_share, residual_of, vectors
         own, vectors = code, chosen
         others = share.copy()
         others[np.arange(len(at)), own] = -1.0

@@ -54,7 +54,9 @@ def require():
     try:
         import cv2  # noqa: F401
     except ImportError as exc:
-        raise InputError("same-scene copies need the features extra: pip install 'labelprep[features]'") from exc
+        from .embedding import EXTRA_LINE
+
+        raise InputError(EXTRA_LINE) from exc
 
 
 def scene_links(manifest, root, features, *, flips=False, jobs=None, cluster=None, seed=0, progress=None):
